@@ -1,0 +1,61 @@
+"""create_app(): the FastAPI application, its database and its routes."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from pathlib import Path
+
+import plotly
+from fastapi import FastAPI
+from fastapi.responses import FileResponse
+from fastapi.staticfiles import StaticFiles
+
+from server import errors
+from server.calibrations import pages as calibration_pages
+from server.calibrations import routes as calibration_routes
+from server.accounts import pages as account_pages
+from server.config import Settings
+from server.db import make_engine, make_sessionmaker
+from server.fleet import pages as fleet_pages
+from server.fleet import routes as fleet_routes
+from server.htmx import WEB
+from server.migrate import upgrade
+
+PLOTLY_JS = Path(plotly.__file__).parent / "package_data" / "plotly.min.js"
+
+
+def create_app(settings: Settings | None = None, *, migrate: bool = True) -> FastAPI:
+    """The app for ``settings``; the database is upgraded to the newest schema on start."""
+    settings = settings or Settings()
+    engine = make_engine(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms)
+    if migrate:
+        upgrade(engine)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        yield
+        engine.dispose()
+
+    app = FastAPI(
+        title="sensorledger",
+        summary="Calibration records, fitting and hand-off for a fleet of sensors",
+        version="0.1.0",
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    app.state.engine = engine
+    app.state.sessionmaker = make_sessionmaker(engine)
+    errors.install(app)
+
+    @app.get("/static/vendor/plotly.min.js", include_in_schema=False)
+    def plotly_js() -> FileResponse:
+        """plotly.js as bundled in the installed plotly package: nothing leaves the machine."""
+        return FileResponse(PLOTLY_JS, media_type="text/javascript",
+                            headers={"Cache-Control": "public, max-age=86400"})
+
+    app.mount("/static", StaticFiles(directory=WEB / "static"), name="static")
+    for module in (fleet_routes, calibration_routes, account_pages, fleet_pages,
+                   calibration_pages):
+        app.include_router(module.router)
+    return app

@@ -1,0 +1,93 @@
+"""Calibration sessions (immutable once saved), their points and their fits."""
+
+from __future__ import annotations
+
+import enum
+from datetime import datetime
+from typing import TYPE_CHECKING, Any
+
+from sqlalchemy import JSON, Boolean, Enum, Float, ForeignKey, Integer, String, Text
+from sqlalchemy.orm import Mapped, mapped_column, relationship
+
+from server.db import Base, UTCDateTime, utcnow
+
+if TYPE_CHECKING:
+    from server.fleet.models import Unit
+
+
+class SessionKind(enum.StrEnum):
+    incoming = "incoming"
+    as_found = "as_found"
+    as_left = "as_left"
+    periodic = "periodic"
+
+
+class CalibrationSession(Base):
+    __tablename__ = "calibration_session"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    unit_id: Mapped[int] = mapped_column(ForeignKey("unit.id"), index=True)
+    performed_at: Mapped[datetime] = mapped_column(UTCDateTime)
+    operator: Mapped[str] = mapped_column(String(64))
+    reference: Mapped[str] = mapped_column(String(128))
+    kind: Mapped[SessionKind] = mapped_column(
+        Enum(SessionKind, native_enum=False, length=16, validate_strings=True)
+    )
+    ambient: Mapped[str | None] = mapped_column(String(128))
+    notes: Mapped[str | None] = mapped_column(Text)
+    recorded_by: Mapped[str | None] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    voided_at: Mapped[datetime | None] = mapped_column(UTCDateTime)
+    void_reason: Mapped[str | None] = mapped_column(Text)
+
+    unit: Mapped[Unit] = relationship(back_populates="sessions")
+    points: Mapped[list[Point]] = relationship(
+        back_populates="session", order_by="Point.seq", cascade="all, delete-orphan"
+    )
+    fits: Mapped[list[FitRecord]] = relationship(
+        back_populates="session", order_by="FitRecord.id", cascade="all, delete-orphan"
+    )
+
+    @property
+    def current_fit(self) -> FitRecord | None:
+        return next((f for f in self.fits if f.is_current), None)
+
+
+class Point(Base):
+    __tablename__ = "point"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    session_id: Mapped[int] = mapped_column(ForeignKey("calibration_session.id"), index=True)
+    seq: Mapped[int] = mapped_column(Integer)
+    reference_value: Mapped[float] = mapped_column(Float)
+    reading: Mapped[float] = mapped_column(Float)
+    repeat_index: Mapped[int] = mapped_column(Integer, default=0)
+    excluded: Mapped[bool] = mapped_column(Boolean, default=False)
+    exclude_reason: Mapped[str | None] = mapped_column(Text)
+
+    session: Mapped[CalibrationSession] = relationship(back_populates="points")
+
+
+class FitRecord(Base):
+    """One fit of a session; refits add rows and move ``is_current``, never overwrite."""
+
+    __tablename__ = "fit"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    session_id: Mapped[int] = mapped_column(ForeignKey("calibration_session.id"), index=True)
+    family: Mapped[str] = mapped_column(String(32))
+    options: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    result: Mapped[dict[str, Any]] = mapped_column(JSON)  # shared.Fit.to_dict()
+    decision: Mapped[dict[str, Any]] = mapped_column(JSON)  # shared.Decision.to_dict()
+    passed: Mapped[bool] = mapped_column(Boolean)
+    is_current: Mapped[bool] = mapped_column(Boolean, default=True)
+    engine_version: Mapped[str] = mapped_column(String(32))
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+    session: Mapped[CalibrationSession] = relationship(back_populates="fits")
+
+
+def latest_session(sessions: list[CalibrationSession]) -> CalibrationSession | None:
+    """The newest session that is not voided and has a current fit."""
+    valid = [s for s in sessions if s.voided_at is None and s.current_fit is not None]
+    return max(valid, key=lambda s: (s.performed_at, s.id), default=None)

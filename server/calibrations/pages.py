@@ -1,0 +1,7 @@
+"""Browser pages (server-rendered, htmx for partial updates)."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter
+
+router = APIRouter(include_in_schema=False)

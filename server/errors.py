@@ -1,0 +1,91 @@
+"""Domain errors and the one place where they (and invalid requests) become responses."""
+
+from __future__ import annotations
+
+import logging
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse, RedirectResponse, Response
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
+log = logging.getLogger("sensorledger")
+
+
+class DomainError(Exception):
+    """An error the user can act on; ``field`` names the input at fault, when there is one."""
+
+    status_code = 400
+
+    def __init__(self, message: str, *, field: str | None = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.field = field
+
+
+class NotFound(DomainError):
+    status_code = 404
+
+
+class Conflict(DomainError):
+    status_code = 409
+
+
+class Invalid(DomainError):
+    status_code = 422
+
+
+class NotSignedIn(DomainError):
+    status_code = 401
+
+
+class Forbidden(DomainError):
+    status_code = 403
+
+
+def _is_api(request: Request) -> bool:
+    return request.url.path.startswith("/api/")
+
+
+def _field(loc: tuple[object, ...]) -> str:
+    parts = [str(p) for p in loc]
+    if parts and parts[0] in {"body", "query", "path", "form"}:
+        parts = parts[1:]
+    return ".".join(parts)
+
+
+def install(app: FastAPI) -> None:
+    """Register the handlers: JSON under /api/, an HTML page elsewhere."""
+    from server.htmx import render  # local: htmx imports templates, which import config
+
+    @app.exception_handler(DomainError)
+    async def on_domain_error(request: Request, exc: DomainError) -> Response:
+        if isinstance(exc, NotSignedIn) and not _is_api(request):
+            return RedirectResponse(f"/signin?next={request.url.path}", status_code=303)
+        if _is_api(request):
+            headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else None
+            return JSONResponse({"detail": exc.message, "field": exc.field}, exc.status_code,
+                                headers=headers)
+        return render(request, "errors/page.html", block="problem",
+                      status_code=exc.status_code, message=exc.message)
+
+    @app.exception_handler(RequestValidationError)
+    async def on_invalid(request: Request, exc: RequestValidationError) -> Response:
+        errors = exc.errors()
+        first = errors[0] if errors else {"loc": (), "msg": "invalid request"}
+        field = _field(tuple(first.get("loc", ())))
+        message = f"{field}: {first['msg']}" if field else str(first["msg"])
+        if _is_api(request):
+            detail = [{"field": _field(tuple(e.get("loc", ()))), "message": e["msg"]}
+                      for e in errors]
+            return JSONResponse({"detail": message, "field": field, "errors": detail}, 422)
+        return render(request, "errors/page.html", block="problem", status_code=422,
+                      message=message)
+
+    @app.exception_handler(StarletteHTTPException)
+    async def on_http(request: Request, exc: StarletteHTTPException) -> Response:
+        message = "not found" if exc.status_code == 404 else str(exc.detail)
+        if _is_api(request):
+            return JSONResponse({"detail": message, "field": None}, exc.status_code)
+        return render(request, "errors/page.html", block="problem",
+                      status_code=exc.status_code, message=message)

@@ -1,0 +1,65 @@
+"""Sensor types and units."""
+
+from __future__ import annotations
+
+import enum
+from datetime import date, datetime
+from typing import TYPE_CHECKING, Any
+
+from sqlalchemy import JSON, Enum, Float, ForeignKey, Integer, String, Text
+from sqlalchemy.orm import Mapped, mapped_column, relationship
+
+from server.db import Base, UTCDateTime, utcnow
+
+if TYPE_CHECKING:
+    from server.calibrations.models import CalibrationSession
+
+
+class UnitStatus(enum.StrEnum):
+    in_stock = "in_stock"
+    installed = "installed"
+    quarantined = "quarantined"
+    retired = "retired"
+
+
+class SensorType(Base):
+    __tablename__ = "sensor_type"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String(64), unique=True)
+    quantity: Mapped[str] = mapped_column(String(64))
+    value_unit: Mapped[str] = mapped_column(String(16))
+    reading_unit: Mapped[str] = mapped_column(String(16))
+    reading_min: Mapped[float] = mapped_column(Float)
+    reading_max: Mapped[float] = mapped_column(Float)
+    families: Mapped[list[str]] = mapped_column(JSON)
+    family_options: Mapped[dict[str, dict[str, Any]]] = mapped_column(JSON, default=dict)
+    tolerance_abs: Mapped[float | None] = mapped_column(Float)
+    tolerance_rel: Mapped[float | None] = mapped_column(Float)  # percent of value
+    drift_limit_abs: Mapped[float | None] = mapped_column(Float)
+    interval_days: Mapped[int] = mapped_column(Integer, default=365)
+    tur: Mapped[float] = mapped_column(Float, default=4.0)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+    units: Mapped[list[Unit]] = relationship(back_populates="sensor_type")
+
+
+class Unit(Base):
+    __tablename__ = "unit"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    serial: Mapped[str] = mapped_column(String(64), unique=True)
+    sensor_type_id: Mapped[int] = mapped_column(ForeignKey("sensor_type.id"), index=True)
+    status: Mapped[UnitStatus] = mapped_column(
+        Enum(UnitStatus, native_enum=False, length=16, validate_strings=True),
+        default=UnitStatus.in_stock,
+    )
+    installed_in: Mapped[str | None] = mapped_column(String(128))
+    received_on: Mapped[date | None]
+    notes: Mapped[str | None] = mapped_column(Text)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+    sensor_type: Mapped[SensorType] = relationship(back_populates="units")
+    sessions: Mapped[list[CalibrationSession]] = relationship(
+        back_populates="unit", order_by="CalibrationSession.performed_at"
+    )

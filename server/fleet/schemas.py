@@ -1,0 +1,90 @@
+"""Request and response shapes for sensor types and units."""
+
+from __future__ import annotations
+
+from datetime import date, datetime
+from typing import Annotated, Any
+
+from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
+
+from server.fleet.models import UnitStatus
+
+Name = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=64)]
+ShortText = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=16)]
+
+
+class SensorTypeCreate(BaseModel):
+    """A kind of sensor: what it measures, its reading span, how it is fitted and judged."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    name: Name
+    quantity: Name = Field(description="physical quantity, e.g. distance")
+    value_unit: ShortText = Field(description="unit of the value, e.g. mm")
+    reading_unit: ShortText = Field(description="unit of the reading, e.g. counts")
+    reading_min: float = Field(allow_inf_nan=False)
+    reading_max: float = Field(allow_inf_nan=False)
+    families: list[str] = Field(min_length=1, description="model families to fit, first is "
+                                "the default (see the family catalog)")
+    family_options: dict[str, dict[str, Any]] = Field(
+        default_factory=dict, description="options per family, e.g. {'polynomial': {'degree': 2}}")
+    tolerance_abs: float | None = Field(None, ge=0, allow_inf_nan=False,
+                                        description="absolute tolerance, value units")
+    tolerance_rel: float | None = Field(None, ge=0, allow_inf_nan=False,
+                                        description="relative tolerance, percent of value")
+    drift_limit_abs: float | None = Field(None, gt=0, allow_inf_nan=False,
+                                          description="largest allowed drift, value units")
+    interval_days: int = Field(365, ge=1, le=3650, description="recalibration interval")
+    tur: float = Field(4.0, gt=0, description="required test-uncertainty ratio")
+
+    @model_validator(mode="after")
+    def _consistent(self) -> SensorTypeCreate:
+        if self.reading_max <= self.reading_min:
+            raise ValueError("reading_max must be greater than reading_min")
+        if not (self.tolerance_abs or self.tolerance_rel):
+            raise ValueError("give tolerance_abs and/or tolerance_rel")
+        return self
+
+
+class SensorTypeRead(BaseModel):
+    model_config = ConfigDict(from_attributes=True)
+
+    id: int
+    name: str
+    quantity: str
+    value_unit: str
+    reading_unit: str
+    reading_min: float
+    reading_max: float
+    families: list[str]
+    family_options: dict[str, dict[str, Any]]
+    tolerance_abs: float | None
+    tolerance_rel: float | None
+    drift_limit_abs: float | None
+    interval_days: int
+    tur: float
+    created_at: datetime
+
+
+class UnitCreate(BaseModel):
+    """A unit received: its serial and its type (by name)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    serial: Name
+    sensor_type: Name
+    received_on: date | None = None
+    notes: str | None = Field(None, max_length=2000)
+
+
+class UnitRead(BaseModel):
+    serial: str
+    sensor_type: str
+    status: UnitStatus
+    installed_in: str | None
+    received_on: date | None
+    notes: str | None
+    calibration_count: int
+    last_calibrated_at: datetime | None
+    last_passed: bool | None
+    due_on: date | None

@@ -1,0 +1,40 @@
+"""The only reader of HX-* headers: render a whole page, or one named block for htmx."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+from fastapi import Request
+from fastapi.responses import HTMLResponse
+from jinja2 import Environment, FileSystemLoader, StrictUndefined, select_autoescape
+
+WEB = Path(__file__).resolve().parent.parent / "web"
+
+env = Environment(
+    loader=FileSystemLoader(WEB / "templates"),
+    autoescape=select_autoescape(["html"]),
+    undefined=StrictUndefined,
+    trim_blocks=True,
+    lstrip_blocks=True,
+)
+env.filters["tojson_compact"] = lambda v: json.dumps(v, separators=(",", ":"))
+
+
+def is_partial(request: Request) -> bool:
+    h = request.headers
+    return h.get("HX-Request") == "true" and h.get("HX-History-Restore-Request") != "true"
+
+
+def render(request: Request, name: str, *, block: str, status_code: int = 200,
+           headers: dict[str, str] | None = None, **ctx: Any) -> HTMLResponse:
+    """The page ``name``, or only its ``block`` when htmx asked for a fragment."""
+    template = env.get_template(name)
+    ctx.setdefault("user", getattr(request.state, "user", None))
+    ctx["request"] = request
+    if is_partial(request):
+        html = "".join(template.blocks[block](template.new_context(ctx)))
+    else:
+        html = template.render(ctx)
+    return HTMLResponse(html, status_code, headers={"Vary": "HX-Request", **(headers or {})})

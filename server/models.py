@@ -1,0 +1,9 @@
+"""Every ORM model, imported once so that Base.metadata is complete (Alembic, tests)."""
+
+from server.accounts.models import Token, User
+from server.calibrations.models import CalibrationSession, FitRecord, Point
+from server.db import Base
+from server.fleet.models import SensorType, Unit
+
+__all__ = ["Base", "CalibrationSession", "FitRecord", "Point", "SensorType", "Token", "Unit",
+           "User"]

@@ -1,0 +1,33 @@
+"""Pagination shared by every list."""
+
+from __future__ import annotations
+
+from typing import Annotated, Generic, TypeVar
+
+from fastapi import Query
+from pydantic import BaseModel
+
+
+class PageParams(BaseModel):
+    page: int = 1
+    per_page: int = 50
+
+    @property
+    def offset(self) -> int:
+        return (self.page - 1) * self.per_page
+
+
+def page_params(page: Annotated[int, Query(ge=1, description="1-based page number")] = 1,
+                per_page: Annotated[int, Query(ge=1, le=500, description="items per page")] = 50
+                ) -> PageParams:
+    return PageParams(page=page, per_page=per_page)
+
+
+T = TypeVar("T")
+
+
+class Page(BaseModel, Generic[T]):
+    items: list[T]
+    total: int
+    page: int
+    per_page: int

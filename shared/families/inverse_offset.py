@@ -1,0 +1,92 @@
+"""inverse_offset: value = k / (r + r0) + v0. Infrared triangulation rangefinders.
+
+Only r0 enters non-linearly, so it is found by variable projection: for each trial r0 the linear
+parameters (k, v0) are solved exactly, and the residual sum of squares is minimised over r0 alone
+(a log-spaced scan, then a bounded scalar search). A final Gauss–Newton polish of all three
+parameters with the analytic Jacobian gives the estimate the covariance is taken at. The search keeps
+r + r0 > 0 over the points, so the curve has no pole inside the calibrated range.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from scipy.optimize import least_squares, minimize_scalar
+
+from shared.errors import SingularFit
+from shared.families.base import (
+    Array,
+    Options,
+    Solution,
+    check_known_options,
+    unscaled_covariance,
+    weighted_lstsq,
+)
+
+SCAN = np.logspace(-4, 4, 81)  # (r_min + r0) as a multiple of the reading span
+
+
+class InverseOffset:
+    name = "inverse_offset"
+    formula = "value = k / (r + r0) + v0"
+    typical = "infrared rangefinder"
+    options: dict[str, Any] = {}
+    foldback = True
+
+    def check_options(self, options: Options) -> dict[str, Any]:
+        return check_known_options(self.name, options, self.options)
+
+    def param_names(self, options: Options) -> tuple[str, ...]:
+        return ("k", "r0", "v0")
+
+    def evaluate(self, params: Array, reading: Array, options: Options) -> Array:
+        k, r0, v0 = params
+        return k / (reading + r0) + v0
+
+    def jacobian(self, params: Array, reading: Array, options: Options) -> Array:
+        k, r0, _ = params
+        inv = 1.0 / (reading + r0)
+        return np.stack([inv, -k * inv**2, np.ones_like(reading)], axis=-1)
+
+    def solve(self, reading: Array, value: Array, weight: Array, options: Options) -> Solution:
+        r_min = float(reading.min())
+        span = float(np.ptp(reading)) or abs(r_min) or 1.0
+        sw = np.sqrt(weight)
+
+        def projected(log_d: float) -> tuple[float, Array]:
+            r0 = np.exp(log_d) * span - r_min
+            design = np.stack([1.0 / (reading + r0), np.ones_like(reading)], axis=-1)
+            coef, _ = weighted_lstsq(design, value, weight)
+            resid = (design @ coef - value) * sw
+            return float(resid @ resid), np.array([coef[0], r0, coef[1]])
+
+        logs = np.log(SCAN)
+        costs = np.array([projected(x)[0] for x in logs])
+        best = int(np.argmin(costs))
+        if best == len(logs) - 1:
+            raise SingularFit(
+                "inverse_offset: the points show no curvature (r0 runs to infinity); "
+                "a line fits them as well"
+            )
+        lo, hi = logs[max(best - 1, 0)], logs[min(best + 1, len(logs) - 1)]
+        found = minimize_scalar(lambda x: projected(x)[0], bounds=(lo, hi), method="bounded",
+                                options={"xatol": 1e-10})
+        start = projected(float(found.x))[1]
+
+        def resid(p: Array) -> Array:
+            return (self.evaluate(p, reading, options) - value) * sw
+
+        def jac(p: Array) -> Array:
+            return self.jacobian(p, reading, options) * sw[:, None]
+
+        polished = least_squares(resid, start, jac=jac, method="lm", x_scale="jac",
+                                 xtol=1e-15, ftol=1e-15, gtol=1e-15)
+        params = polished.x if polished.cost <= 0.5 * found.fun else start
+        if np.any(reading + params[1] <= 0):
+            raise SingularFit("inverse_offset: the fitted pole r = -r0 lies inside the readings")
+        cov = unscaled_covariance(self.jacobian(params, reading, options), weight)
+        return Solution(params=np.asarray(params, dtype=float), cov_unscaled=cov)
+
+
+FAMILY = InverseOffset()

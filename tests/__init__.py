@@ -1,0 +1,1 @@
+"""sensorledger's test suites (a package, so that ``python -m tests.bench`` runs)."""

@@ -1,0 +1,1 @@
+"""Tests of the calibration engine (package ``shared``)."""
