@@ -48,13 +48,15 @@ class Decision:
         }
 
 
-def describe_tolerance(tolerance_abs: float | None, tolerance_rel: float | None) -> str:
+def describe_tolerance(tolerance_abs: float | None, tolerance_rel: float | None,
+                       unit: str = "") -> str:
+    """'±1 deg', '±0.5 % of value', '±(3 mm + 2 % of value)'."""
     parts = []
     if tolerance_abs:
-        parts.append(f"{tolerance_abs:g}")
+        parts.append(f"{tolerance_abs:g} {unit}".rstrip())
     if tolerance_rel:
         parts.append(f"{tolerance_rel:g} % of value")
-    return "±(" + " + ".join(parts) + ")"
+    return f"±{parts[0]}" if len(parts) == 1 else "±(" + " + ".join(parts) + ")"
 
 
 def decide(
@@ -70,7 +72,7 @@ def decide(
         raise BadInput("a tolerance is needed: give tolerance_abs and/or tolerance_rel")
     if (tolerance_abs or 0) < 0 or (tolerance_rel or 0) < 0 or tur <= 0:
         raise BadInput("tolerances and the TUR must be positive")
-    tol_text = describe_tolerance(tolerance_abs, tolerance_rel) + (f" {unit}" if unit else "")
+    tol_text = describe_tolerance(tolerance_abs, tolerance_rel, unit)
     rule = (f"Pass when every residual is within {tol_text} and the expanded uncertainty of the "
             f"fitted curve (k = {K_CONVENTION:g}) is at most 1/{tur:g} of that tolerance at every "
             f"point (test-uncertainty ratio {tur:g}:1, common practice).")

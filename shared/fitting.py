@@ -186,8 +186,11 @@ class Fit:
 
 
 def _as_points(reading: ArrayLike, value: ArrayLike) -> tuple[Array, Array]:
-    r = np.asarray(reading, dtype=float).ravel()
-    v = np.asarray(value, dtype=float).ravel()
+    try:
+        r = np.asarray(reading, dtype=float).ravel()
+        v = np.asarray(value, dtype=float).ravel()
+    except (TypeError, ValueError) as exc:
+        raise BadInput(f"reading and value must be lists of numbers: {exc}") from None
     if r.shape != v.shape:
         raise BadInput(f"reading has {r.size} entries but value has {v.size}")
     bad = ~(np.isfinite(r) & np.isfinite(v))
@@ -297,6 +300,7 @@ def fit_many(
     **options: Any,
 ) -> list[Fit]:
     """Fit the same family to many units' points; the same results as ``fit`` one by one."""
+    get_family(family).check_options(options)  # a bad name is an error even with no units
     return [fit(family, r, v, **options) for r, v in datasets]
 
 

@@ -73,8 +73,7 @@ def load_strd(name: str) -> StrdDataset:
         raise ValueError(f"{path.name}: certified residual standard deviation not found")
 
     rows = [
-        [fortran_float(tok) for tok in line.split()]
-        for line in lines[data_first - 1 : data_last]
+        [fortran_float(tok) for tok in line.split()] for line in lines[data_first - 1 : data_last]
     ]
     data = np.array(rows, dtype=np.float64)
     if data.ndim != 2 or data.shape[1] != 2:

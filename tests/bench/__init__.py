@@ -1,0 +1,1 @@
+"""Engine benchmark: ``python -m tests.bench`` (not collected by pytest; see __main__.py)."""

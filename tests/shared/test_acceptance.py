@@ -1,0 +1,134 @@
+"""decide(): pass/fail cases built by hand from the rule in shared/acceptance.py.
+
+Rule: allowed error at a point = tolerance_abs + tolerance_rel/100 * |value|. Pass when every used
+point's |residual| <= allowed, and the k = 2 expanded uncertainty U of the fitted curve at every
+used point is <= allowed / TUR (TUR 4 by default).
+
+The points: readings r = 0..10, values 1 + 2 r + e with e = d * ((r - 5)^2 - 10), d = 0.01.
+e sums to zero and is orthogonal to r (it is the discrete quadratic orthogonal polynomial), so the
+least-squares line is exactly 1 + 2 r and the residuals are exactly e:
+    e = d * [15, 6, -1, -6, -9, -10, -9, -6, -1, 6, 15], largest |e| = 0.15 at r = 0 and r = 10.
+By hand: sum e^2 = 858 d^2, so s = d sqrt(858 / 9); Sxx = sum (r - 5)^2 = 110, so the curve's
+standard uncertainty is u(r) = s sqrt(1/11 + (r - 5)^2 / 110), largest at r = 0 and 10:
+    U_max = 2 s sqrt(35/110) = 0.110151...   (and U(5) = 2 s sqrt(1/11) = 0.0588...)
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from shared import BadInput, Fit, decide, fit
+
+D = 0.01
+R = np.arange(11.0)
+E = D * ((R - 5.0) ** 2 - 10.0)
+V = 1.0 + 2.0 * R + E
+S = D * math.sqrt(858.0 / 9.0)
+U_MAX = 2.0 * S * math.sqrt(35.0 / 110.0)  # 0.110151
+
+
+@pytest.fixture(scope="module")
+def line_fit() -> Fit:
+    return fit("line", R, V)
+
+
+def test_hand_numbers_hold(line_fit: Fit) -> None:
+    assert line_fit.params["c0"] == pytest.approx(1.0, abs=1e-12)
+    assert line_fit.params["c1"] == pytest.approx(2.0, abs=1e-12)
+    np.testing.assert_allclose(line_fit.residuals, E, atol=1e-12)
+    assert line_fit.rse == pytest.approx(S, rel=1e-12)
+    assert abs(U_MAX - 0.110151) < 1e-6
+
+
+def test_passes_when_errors_and_uncertainty_are_within_tolerance(line_fit: Fit) -> None:
+    # allowed 0.5 >= 0.15 everywhere; 0.5 / 0.110151 = 4.54 >= 4
+    d = decide(line_fit, 0.5, None)
+    assert d.passed and d.reasons == ()
+    assert d.worst_error == pytest.approx(0.15, rel=1e-9)
+    assert d.allowed_at_worst == 0.5
+    assert d.max_expanded_uncertainty == pytest.approx(U_MAX, rel=1e-9)
+    assert d.tur_achieved == pytest.approx(0.5 / U_MAX, rel=1e-9)
+    assert d.tur_required == 4.0
+    assert "0.5" in d.rule and "4:1" in d.rule
+
+
+def test_fails_on_uncertainty_ratio_alone(line_fit: Fit) -> None:
+    # every error (<= 0.15) is within 0.4, but 0.4 / 0.110151 = 3.63 < 4
+    d = decide(line_fit, 0.4, None)
+    assert not d.passed
+    assert len(d.reasons) == 1 and "test-uncertainty ratio" in d.reasons[0]
+    assert d.tur_achieved == pytest.approx(0.4 / U_MAX, rel=1e-9)
+
+
+def test_a_lower_required_ratio_passes_the_same_fit(line_fit: Fit) -> None:
+    # 3.63 >= 3
+    assert decide(line_fit, 0.4, None, tur=3.0).passed
+
+
+def test_fails_on_errors_alone(line_fit: Fit) -> None:
+    # with TUR 1: 0.12 / 0.110151 = 1.09 >= 1, but |e| = 0.15 > 0.12 at r = 0 and r = 10 (two
+    # points; the next largest |e| is 0.10)
+    d = decide(line_fit, 0.12, None, tur=1.0)
+    assert not d.passed
+    assert len(d.reasons) == 1 and d.reasons[0].startswith("2 point(s) outside tolerance")
+    assert d.worst_error == pytest.approx(0.15, rel=1e-9)
+    assert d.worst_error_at in (pytest.approx(V[0]), pytest.approx(V[10]))
+
+
+def test_relative_tolerance_uses_the_value(line_fit: Fit) -> None:
+    # 10 % of |value|: at r = 0 the value is 1.15, allowed 0.115 < 0.15 (outside); at r = 1 the
+    # value is 3.06, allowed 0.306 > 0.06; elsewhere larger still. One point outside, and the
+    # ratio at r = 0 is 0.115 / 0.110151 = 1.04 < 4.
+    d = decide(line_fit, None, 10.0)
+    assert not d.passed
+    assert d.reasons[0].startswith("1 point(s) outside tolerance")
+    assert "test-uncertainty ratio" in d.reasons[1]
+    assert d.worst_error_at == pytest.approx(1.15, rel=1e-12)
+    assert d.allowed_at_worst == pytest.approx(0.115, rel=1e-12)
+
+
+def test_absolute_and_relative_parts_add(line_fit: Fit) -> None:
+    # 0.42 alone: 0.42 / 0.110151 = 3.81 < 4, fails. 0.42 + 2 % of |value|: at r = 0,
+    # 0.42 + 0.023 = 0.443 -> 4.02; at r = 10, 0.42 + 0.423 -> 7.65; in between U is smaller and
+    # the allowed error larger. Passes.
+    assert not decide(line_fit, 0.42, None).passed
+    d = decide(line_fit, 0.42, 2.0)
+    assert d.passed, d.reasons
+    assert d.tur_achieved == pytest.approx(0.443 / U_MAX, rel=1e-9)
+
+
+def test_excluded_points_do_not_count() -> None:
+    # a twelfth point 5 units off, excluded by the user: the fit and the decision are as before
+    r, v = np.r_[R, 5.5], np.r_[V, 1.0 + 2.0 * 5.5 + 5.0]
+    f = fit("line", r, v, exclude={11: "operator: probe not seated"})
+    d = decide(f, 0.5, None)
+    assert d.passed and d.worst_error == pytest.approx(0.15, rel=1e-9)
+
+
+def test_an_exact_line_passes_any_tolerance() -> None:
+    f = fit("line", R, 1.0 + 2.0 * R)
+    assert decide(f, 1e-6, None).passed
+
+
+@pytest.mark.parametrize(
+    ("tolerance_abs", "tolerance_rel"), [(None, None), (0.0, None), (None, 0.0), (0.0, 0.0)]
+)
+def test_a_missing_tolerance_is_bad_input(
+    line_fit: Fit, tolerance_abs: float | None, tolerance_rel: float | None
+) -> None:
+    with pytest.raises(BadInput, match="tolerance"):
+        decide(line_fit, tolerance_abs, tolerance_rel)
+
+
+@pytest.mark.parametrize(
+    ("tolerance_abs", "tolerance_rel", "tur"),
+    [(-0.1, None, 4.0), (0.5, -1.0, 4.0), (0.5, None, 0.0)],
+)
+def test_negative_tolerance_or_ratio_is_bad_input(
+    line_fit: Fit, tolerance_abs: float, tolerance_rel: float | None, tur: float
+) -> None:
+    with pytest.raises(BadInput):
+        decide(line_fit, tolerance_abs, tolerance_rel, tur=tur)
