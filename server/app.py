@@ -12,9 +12,9 @@ from fastapi.responses import FileResponse
 from fastapi.staticfiles import StaticFiles
 
 from server import errors
+from server.accounts import pages as account_pages
 from server.calibrations import pages as calibration_pages
 from server.calibrations import routes as calibration_routes
-from server.accounts import pages as account_pages
 from server.config import Settings
 from server.db import make_engine, make_sessionmaker
 from server.fleet import pages as fleet_pages
@@ -51,11 +51,13 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     @app.get("/static/vendor/plotly.min.js", include_in_schema=False)
     def plotly_js() -> FileResponse:
         """plotly.js as bundled in the installed plotly package: nothing leaves the machine."""
-        return FileResponse(PLOTLY_JS, media_type="text/javascript",
-                            headers={"Cache-Control": "public, max-age=86400"})
+        return FileResponse(
+            PLOTLY_JS,
+            media_type="text/javascript",
+            headers={"Cache-Control": "public, max-age=86400"},
+        )
 
     app.mount("/static", StaticFiles(directory=WEB / "static"), name="static")
-    for module in (fleet_routes, calibration_routes, account_pages, fleet_pages,
-                   calibration_pages):
+    for module in (fleet_routes, calibration_routes, account_pages, fleet_pages, calibration_pages):
         app.include_router(module.router)
     return app

@@ -57,8 +57,9 @@ def make_engine(url: str, *, busy_timeout_ms: int = 5000) -> Engine:
         return create_engine(url, pool_pre_ping=True)
     if parsed.database and parsed.database != ":memory:":
         Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
-    engine = create_engine(url, connect_args={"check_same_thread": False,
-                                              "timeout": busy_timeout_ms / 1000})
+    engine = create_engine(
+        url, connect_args={"check_same_thread": False, "timeout": busy_timeout_ms / 1000}
+    )
 
     @event.listens_for(engine, "connect")
     def _pragmas(dbapi_conn: Any, _record: Any) -> None:

@@ -64,10 +64,16 @@ def install(app: FastAPI) -> None:
             return RedirectResponse(f"/signin?next={request.url.path}", status_code=303)
         if _is_api(request):
             headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else None
-            return JSONResponse({"detail": exc.message, "field": exc.field}, exc.status_code,
-                                headers=headers)
-        return render(request, "errors/page.html", block="problem",
-                      status_code=exc.status_code, message=exc.message)
+            return JSONResponse(
+                {"detail": exc.message, "field": exc.field}, exc.status_code, headers=headers
+            )
+        return render(
+            request,
+            "errors/page.html",
+            block="problem",
+            status_code=exc.status_code,
+            message=exc.message,
+        )
 
     @app.exception_handler(RequestValidationError)
     async def on_invalid(request: Request, exc: RequestValidationError) -> Response:
@@ -76,16 +82,23 @@ def install(app: FastAPI) -> None:
         field = _field(tuple(first.get("loc", ())))
         message = f"{field}: {first['msg']}" if field else str(first["msg"])
         if _is_api(request):
-            detail = [{"field": _field(tuple(e.get("loc", ()))), "message": e["msg"]}
-                      for e in errors]
+            detail = [
+                {"field": _field(tuple(e.get("loc", ()))), "message": e["msg"]} for e in errors
+            ]
             return JSONResponse({"detail": message, "field": field, "errors": detail}, 422)
-        return render(request, "errors/page.html", block="problem", status_code=422,
-                      message=message)
+        return render(
+            request, "errors/page.html", block="problem", status_code=422, message=message
+        )
 
     @app.exception_handler(StarletteHTTPException)
     async def on_http(request: Request, exc: StarletteHTTPException) -> Response:
         message = "not found" if exc.status_code == 404 else str(exc.detail)
         if _is_api(request):
             return JSONResponse({"detail": message, "field": None}, exc.status_code)
-        return render(request, "errors/page.html", block="problem",
-                      status_code=exc.status_code, message=message)
+        return render(
+            request,
+            "errors/page.html",
+            block="problem",
+            status_code=exc.status_code,
+            message=message,
+        )

@@ -27,8 +27,15 @@ def is_partial(request: Request) -> bool:
     return h.get("HX-Request") == "true" and h.get("HX-History-Restore-Request") != "true"
 
 
-def render(request: Request, name: str, *, block: str, status_code: int = 200,
-           headers: dict[str, str] | None = None, **ctx: Any) -> HTMLResponse:
+def render(
+    request: Request,
+    name: str,
+    *,
+    block: str,
+    status_code: int = 200,
+    headers: dict[str, str] | None = None,
+    **ctx: Any,
+) -> HTMLResponse:
     """The page ``name``, or only its ``block`` when htmx asked for a fragment."""
     template = env.get_template(name)
     ctx.setdefault("user", getattr(request.state, "user", None))

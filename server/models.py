@@ -5,5 +5,13 @@ from server.calibrations.models import CalibrationSession, FitRecord, Point
 from server.db import Base
 from server.fleet.models import SensorType, Unit
 
-__all__ = ["Base", "CalibrationSession", "FitRecord", "Point", "SensorType", "Token", "Unit",
-           "User"]
+__all__ = [
+    "Base",
+    "CalibrationSession",
+    "FitRecord",
+    "Point",
+    "SensorType",
+    "Token",
+    "Unit",
+    "User",
+]

@@ -17,9 +17,10 @@ class PageParams(BaseModel):
         return (self.page - 1) * self.per_page
 
 
-def page_params(page: Annotated[int, Query(ge=1, description="1-based page number")] = 1,
-                per_page: Annotated[int, Query(ge=1, le=500, description="items per page")] = 50
-                ) -> PageParams:
+def page_params(
+    page: Annotated[int, Query(ge=1, description="1-based page number")] = 1,
+    per_page: Annotated[int, Query(ge=1, le=500, description="items per page")] = 50,
+) -> PageParams:
     return PageParams(page=page, per_page=per_page)
 
 

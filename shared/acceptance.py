@@ -48,8 +48,9 @@ class Decision:
         }
 
 
-def describe_tolerance(tolerance_abs: float | None, tolerance_rel: float | None,
-                       unit: str = "") -> str:
+def describe_tolerance(
+    tolerance_abs: float | None, tolerance_rel: float | None, unit: str = ""
+) -> str:
     """'±1 deg', '±0.5 % of value', '±(3 mm + 2 % of value)'."""
     parts = []
     if tolerance_abs:
@@ -73,9 +74,11 @@ def decide(
     if (tolerance_abs or 0) < 0 or (tolerance_rel or 0) < 0 or tur <= 0:
         raise BadInput("tolerances and the TUR must be positive")
     tol_text = describe_tolerance(tolerance_abs, tolerance_rel, unit)
-    rule = (f"Pass when every residual is within {tol_text} and the expanded uncertainty of the "
-            f"fitted curve (k = {K_CONVENTION:g}) is at most 1/{tur:g} of that tolerance at every "
-            f"point (test-uncertainty ratio {tur:g}:1, common practice).")
+    rule = (
+        f"Pass when every residual is within {tol_text} and the expanded uncertainty of the "
+        f"fitted curve (k = {K_CONVENTION:g}) is at most 1/{tur:g} of that tolerance at every "
+        f"point (test-uncertainty ratio {tur:g}:1, common practice)."
+    )
     used = result.used
     value = result.value[used]
     error = np.abs(result.residuals[used])
@@ -86,8 +89,10 @@ def decide(
     reasons = []
     n_out = int(np.sum(error > allowed))
     if n_out:
-        reasons.append(f"{n_out} point(s) outside tolerance; worst error {error[worst]:.4g} "
-                       f"at {value[worst]:.6g} where {allowed[worst]:.4g} is allowed")
+        reasons.append(
+            f"{n_out} point(s) outside tolerance; worst error {error[worst]:.4g} "
+            f"at {value[worst]:.6g} where {allowed[worst]:.4g} is allowed"
+        )
     if ratio.min() < tur:
         reasons.append(f"test-uncertainty ratio {ratio.min():.3g}:1 is below {tur:g}:1")
     return Decision(

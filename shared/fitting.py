@@ -21,7 +21,7 @@ MONOTONE_GRID = 513
 
 
 def _frozen(values: ArrayLike, dtype: type = np.float64) -> Array:
-    arr = np.array(values, dtype=dtype)
+    arr: Array = np.array(values, dtype=dtype)
     arr.setflags(write=False)
     return arr
 
@@ -47,8 +47,8 @@ class Fit:
     """A fitted calibration curve: value = f(reading; params). Frozen; no solver attached.
 
     ``sigma_source`` says what the covariance means: ``"residuals"`` — scaled by the residual
-    variance (uncertainty estimated from the scatter of the points); ``"given"`` — absolute, from the
-    value uncertainties the caller supplied.
+    variance (uncertainty estimated from the scatter of the points); ``"given"`` — absolute, from
+    the value uncertainties the caller supplied.
     ``reading``, ``value`` are every input point; ``used`` marks those that entered the fit;
     ``excluded`` gives (index, reason) for each point left out; ``residuals`` = value - f(reading)
     for every point (extrapolated for excluded ones).
@@ -138,8 +138,14 @@ class Fit:
 
     def _interval(self, r: Array, u: Array, k: float) -> Interval:
         value = self.to_value(r, extrapolate=True)
-        return Interval(value=value, u=u, k=k, lower=value - k * u, upper=value + k * u,
-                        in_range=self.in_range(r))
+        return Interval(
+            value=value,
+            u=u,
+            k=k,
+            lower=value - k * u,
+            upper=value + k * u,
+            in_range=self.in_range(r),
+        )
 
     # -- serialisation -------------------------------------------------------------------------
     def to_dict(self) -> dict[str, Any]:
@@ -195,8 +201,10 @@ def _as_points(reading: ArrayLike, value: ArrayLike) -> tuple[Array, Array]:
         raise BadInput(f"reading has {r.size} entries but value has {v.size}")
     bad = ~(np.isfinite(r) & np.isfinite(v))
     if bad.any():
-        raise BadInput(f"reading and value must be finite numbers; point(s) "
-                       f"{', '.join(str(i) for i in np.flatnonzero(bad)[:10])} are not")
+        raise BadInput(
+            f"reading and value must be finite numbers; point(s) "
+            f"{', '.join(str(i) for i in np.flatnonzero(bad)[:10])} are not"
+        )
     return r, v
 
 
@@ -235,6 +243,7 @@ def fit(
     fam = get_family(family)
     opts = fam.check_options(options)
     r, v = _as_points(reading, value)
+    source: SigmaSource
     if u_value is None:
         weight, source = np.ones_like(r), "residuals"
     else:
@@ -259,8 +268,10 @@ def fit(
 
     names = fam.param_names(opts)
     if used.sum() < len(names) + 1:
-        raise TooFewPoints(f"{family} has {len(names)} parameters and needs at least "
-                           f"{len(names) + 1} usable points; got {int(used.sum())}")
+        raise TooFewPoints(
+            f"{family} has {len(names)} parameters and needs at least "
+            f"{len(names) + 1} usable points; got {int(used.sum())}"
+        )
     ru, vu, wu = r[used], v[used], weight[used]
     if np.ptp(ru) == 0:
         raise BadInput("all usable readings are equal: the curve cannot be determined")
@@ -302,5 +313,3 @@ def fit_many(
     """Fit the same family to many units' points; the same results as ``fit`` one by one."""
     get_family(family).check_options(options)  # a bad name is an error even with no units
     return [fit(family, r, v, **options) for r, v in datasets]
-
-

@@ -59,6 +59,8 @@ def find_foldback(reading: Array, value: Array) -> Foldback | None:
     idx, beyond = max(candidates, key=lambda c: c[1].size)
     excluded = tuple(int(i) for i in np.flatnonzero(np.isin(inverse, beyond)))
     side = "below" if beyond[0] < idx else "above"
-    reason = (f"fold-back: reference value {side} the turnover at {levels[idx]:.6g}, where the "
-              f"reading peaks at {mean[idx]:.6g}; one reading maps to two values there")
+    reason = (
+        f"fold-back: reference value {side} the turnover at {levels[idx]:.6g}, where the "
+        f"reading peaks at {mean[idx]:.6g}; one reading maps to two values there"
+    )
     return Foldback(float(levels[idx]), float(mean[idx]), excluded, reason)

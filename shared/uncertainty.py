@@ -28,4 +28,4 @@ def coverage_factor(level: float, dof: float) -> float:
 def propagate(gradient: Array, covariance: Array) -> Array:
     """sqrt(g^T V g) for each row g of ``gradient`` (n x k)."""
     var = np.einsum("ij,jk,ik->i", gradient, covariance, gradient)
-    return np.sqrt(np.maximum(var, 0.0))
+    return np.asarray(np.sqrt(np.maximum(var, 0.0)), dtype=np.float64)

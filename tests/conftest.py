@@ -63,7 +63,7 @@ def db_url(request: pytest.FixtureRequest, tmp_path) -> Iterator[str]:
             yield url
 
 
-def pytest_terminal_summary(terminalreporter, exitstatus, config) -> None:  # noqa: ARG001
+def pytest_terminal_summary(terminalreporter, exitstatus, config) -> None:
     """Say how many PostgreSQL and browser tests actually ran (CI logs show it)."""
     counts: dict[str, dict[str, int]] = {"postgres": {}, "browser": {}}
     for outcome in ("passed", "failed", "skipped", "error"):

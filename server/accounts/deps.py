@@ -1,6 +1,5 @@
 """Who is asking: a Bearer token on the API, a sign-in cookie on pages."""
 
-
 from collections.abc import Callable
 from typing import Annotated
 
@@ -16,12 +15,14 @@ COOKIE = "sensorledger_signin"
 bearer = HTTPBearer(auto_error=False, description="A token from `sensorledger token create`")
 
 
-def api_user(session: SessionDep,
-             credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)]
-             ) -> User:
+def api_user(
+    session: SessionDep,
+    credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)],
+) -> User:
     if credentials is None:
-        raise NotSignedIn("send 'Authorization: Bearer <token>'; create one with "
-                          "`sensorledger token create NAME`")
+        raise NotSignedIn(
+            "send 'Authorization: Bearer <token>'; create one with `sensorledger token create NAME`"
+        )
     return service.user_for_token(session, credentials.credentials, TokenKind.api)
 
 

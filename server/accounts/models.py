@@ -30,8 +30,9 @@ class User(Base):
 
     id: Mapped[int] = mapped_column(primary_key=True)
     name: Mapped[str] = mapped_column(String(64), unique=True)
-    role: Mapped[Role] = mapped_column(Enum(Role, native_enum=False, length=16,
-                                            validate_strings=True))
+    role: Mapped[Role] = mapped_column(
+        Enum(Role, native_enum=False, length=16, validate_strings=True)
+    )
     password_hash: Mapped[str | None] = mapped_column(String(256))
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
 
@@ -46,8 +47,9 @@ class Token(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     user_id: Mapped[int] = mapped_column(ForeignKey("user_account.id"), index=True)
     name: Mapped[str] = mapped_column(String(64))
-    kind: Mapped[TokenKind] = mapped_column(Enum(TokenKind, native_enum=False, length=16,
-                                                 validate_strings=True))
+    kind: Mapped[TokenKind] = mapped_column(
+        Enum(TokenKind, native_enum=False, length=16, validate_strings=True)
+    )
     token_hash: Mapped[str] = mapped_column(String(64), unique=True)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     expires_at: Mapped[datetime | None] = mapped_column(UTCDateTime)

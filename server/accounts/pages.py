@@ -19,30 +19,59 @@ router = APIRouter(include_in_schema=False)
 
 def _safe_next(target: str | None) -> str:
     """Only local paths: a sign-in never redirects off this site."""
-    if not target or not target.startswith("/") or target.startswith("//") or urlsplit(
-            target).netloc:
+    if (
+        not target
+        or not target.startswith("/")
+        or target.startswith("//")
+        or urlsplit(target).netloc
+    ):
         return "/"
     return target
 
 
 @router.get("/signin")
 def signin_page(request: Request, next: str = "/") -> HTMLResponse:
-    return render(request, "accounts/signin.html", block="form", user=None,
-                  next=_safe_next(next), error=None, name="")
+    return render(
+        request,
+        "accounts/signin.html",
+        block="form",
+        user=None,
+        next=_safe_next(next),
+        error=None,
+        name="",
+    )
 
 
 @router.post("/signin")
-def signin(request: Request, session: SessionDep, name: Annotated[str, Form()],
-           password: Annotated[str, Form()], next: Annotated[str, Form()] = "/") -> Response:
+def signin(
+    request: Request,
+    session: SessionDep,
+    name: Annotated[str, Form()],
+    password: Annotated[str, Form()],
+    next: Annotated[str, Form()] = "/",
+) -> Response:
     try:
         raw = service.sign_in(session, name, password, request.app.state.settings.session_days)
     except NotSignedIn as exc:
-        return render(request, "accounts/signin.html", block="form", status_code=401, user=None,
-                      next=_safe_next(next), error=exc.message, name=name)
+        return render(
+            request,
+            "accounts/signin.html",
+            block="form",
+            status_code=401,
+            user=None,
+            next=_safe_next(next),
+            error=exc.message,
+            name=name,
+        )
     session.commit()
     response = RedirectResponse(_safe_next(next), status_code=303)
-    response.set_cookie(COOKIE, raw, httponly=True, samesite="lax",
-                        max_age=request.app.state.settings.session_days * 86400)
+    response.set_cookie(
+        COOKIE,
+        raw,
+        httponly=True,
+        samesite="lax",
+        max_age=request.app.state.settings.session_days * 86400,
+    )
     return response
 
 

@@ -48,8 +48,7 @@ def create_user(session: Session, name: str, role: Role, password: str | None = 
         raise Invalid("a user needs a name", field="name")
     if session.scalar(select(User).where(User.name == name)) is not None:
         raise Conflict(f"user {name!r} exists already", field="name")
-    user = User(name=name, role=role,
-                password_hash=hash_password(password) if password else None)
+    user = User(name=name, role=role, password_hash=hash_password(password) if password else None)
     session.add(user)
     session.flush()
     return user
@@ -61,22 +60,39 @@ def set_password(session: Session, user: User, password: str) -> None:
     user.password_hash = hash_password(password)
 
 
-def create_token(session: Session, user: User, name: str, kind: TokenKind = TokenKind.api,
-                 *, lifetime: timedelta | None = None) -> str:
+def create_token(
+    session: Session,
+    user: User,
+    name: str,
+    kind: TokenKind = TokenKind.api,
+    *,
+    lifetime: timedelta | None = None,
+) -> str:
     """A new token for ``user``; the returned string is the only copy of it."""
     raw = secrets.token_urlsafe(32)
-    session.add(Token(user=user, name=name, kind=kind, token_hash=token_hash(raw),
-                      expires_at=utcnow() + lifetime if lifetime else None))
+    session.add(
+        Token(
+            user=user,
+            name=name,
+            kind=kind,
+            token_hash=token_hash(raw),
+            expires_at=utcnow() + lifetime if lifetime else None,
+        )
+    )
     session.flush()
     return raw
 
 
 def user_for_token(session: Session, raw: str, kind: TokenKind) -> User:
-    token = session.scalar(select(Token).where(Token.token_hash == token_hash(raw),
-                                               Token.kind == kind))
+    token = session.scalar(
+        select(Token).where(Token.token_hash == token_hash(raw), Token.kind == kind)
+    )
     now: datetime = utcnow()
-    if token is None or token.revoked_at is not None or (
-            token.expires_at is not None and token.expires_at <= now):
+    if (
+        token is None
+        or token.revoked_at is not None
+        or (token.expires_at is not None and token.expires_at <= now)
+    ):
         raise NotSignedIn("the token is unknown, expired or revoked")
     return token.user
 
@@ -92,8 +108,9 @@ def sign_in(session: Session, name: str, password: str, days: int) -> str:
     user = session.scalar(select(User).where(User.name == name.strip()))
     if user is None or not check_password(password, user.password_hash):
         raise NotSignedIn("wrong user name or password")
-    return create_token(session, user, "browser sign-in", TokenKind.browser,
-                        lifetime=timedelta(days=days))
+    return create_token(
+        session, user, "browser sign-in", TokenKind.browser, lifetime=timedelta(days=days)
+    )
 
 
 def require_role(user: User, role: Role) -> None:

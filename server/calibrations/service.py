@@ -26,28 +26,44 @@ from server.fleet.service import due_on
 def choose_family(sensor_type: SensorType, family: str | None) -> tuple[str, dict[str, Any]]:
     name = family or sensor_type.families[0]
     if name not in sensor_type.families:
-        raise Invalid(f"{sensor_type.name} units are fitted with "
-                      f"{', '.join(sensor_type.families)}; not {name!r}", field="family")
+        raise Invalid(
+            f"{sensor_type.name} units are fitted with "
+            f"{', '.join(sensor_type.families)}; not {name!r}",
+            field="family",
+        )
     return name, dict(sensor_type.family_options.get(name, {}))
 
 
-def fit_points(sensor_type: SensorType, points: list[PointIn], family: str | None
-               ) -> tuple[shared.Fit, shared.Decision]:
+def fit_points(
+    sensor_type: SensorType, points: list[PointIn], family: str | None
+) -> tuple[shared.Fit, shared.Decision]:
     """Fit and judge points without storing anything (the live preview uses this too)."""
     name, options = choose_family(sensor_type, family)
     exclude = {}
     for i, p in enumerate(points):
         if p.excluded:
             if not (p.exclude_reason and p.exclude_reason.strip()):
-                raise Invalid("an excluded point needs a reason", field=f"points.{i}.exclude_reason")
+                raise Invalid(
+                    "an excluded point needs a reason", field=f"points.{i}.exclude_reason"
+                )
             exclude[i] = p.exclude_reason.strip()
     try:
-        result = shared.fit(name, [p.reading for p in points],
-                            [p.reference_value for p in points], exclude=exclude, **options)
+        result = shared.fit(
+            name,
+            [p.reading for p in points],
+            [p.reference_value for p in points],
+            exclude=exclude,
+            **options,
+        )
     except shared.CalibrationError as exc:
         raise Invalid(f"cannot fit {name}: {exc}", field="points") from exc
-    decision = shared.decide(result, sensor_type.tolerance_abs, sensor_type.tolerance_rel,
-                             tur=sensor_type.tur, unit=sensor_type.value_unit)
+    decision = shared.decide(
+        result,
+        sensor_type.tolerance_abs,
+        sensor_type.tolerance_rel,
+        tur=sensor_type.tur,
+        unit=sensor_type.value_unit,
+    )
     return result, decision
 
 
@@ -61,25 +77,43 @@ def repeat_indices(values: list[float]) -> list[int]:
     return out
 
 
-def run_calibration(session: Any, unit: Unit, data: CalibrationCreate,
-                    recorded_by: str | None) -> CalibrationSession:
+def run_calibration(
+    session: Any, unit: Unit, data: CalibrationCreate, recorded_by: str | None
+) -> CalibrationSession:
     result, decision = fit_points(unit.sensor_type, data.points, data.family)
     record = CalibrationSession(
-        unit=unit, performed_at=data.performed_at, operator=data.operator,
-        reference=data.reference, kind=data.kind, ambient=data.ambient, notes=data.notes,
+        unit=unit,
+        performed_at=data.performed_at,
+        operator=data.operator,
+        reference=data.reference,
+        kind=data.kind,
+        ambient=data.ambient,
+        notes=data.notes,
         recorded_by=recorded_by,
     )
     repeats = repeat_indices([p.reference_value for p in data.points])
     record.points = [
-        Point(seq=i, reference_value=p.reference_value, reading=p.reading,
-              repeat_index=repeats[i], excluded=p.excluded,
-              exclude_reason=p.exclude_reason.strip() if p.excluded and p.exclude_reason else None)
+        Point(
+            seq=i,
+            reference_value=p.reference_value,
+            reading=p.reading,
+            repeat_index=repeats[i],
+            excluded=p.excluded,
+            exclude_reason=p.exclude_reason.strip() if p.excluded and p.exclude_reason else None,
+        )
         for i, p in enumerate(data.points)
     ]
-    record.fits = [FitRecord(family=result.family, options=dict(result.options),
-                             result=result.to_dict(), decision=decision.to_dict(),
-                             passed=decision.passed, is_current=True,
-                             engine_version=result.engine_version)]
+    record.fits = [
+        FitRecord(
+            family=result.family,
+            options=dict(result.options),
+            result=result.to_dict(),
+            decision=decision.to_dict(),
+            passed=decision.passed,
+            is_current=True,
+            engine_version=result.engine_version,
+        )
+    ]
     session.add(record)
     session.flush()
     return record
@@ -96,25 +130,46 @@ def calibration_read(record: CalibrationSession) -> CalibrationRead:
     result, stored = fit_of(record)
     reasons = dict(result.excluded)
     points = [
-        PointRead(reference_value=p.reference_value, reading=p.reading,
-                  repeat_index=p.repeat_index, used=bool(result.used[i]),
-                  excluded_reason=reasons.get(i), residual=float(result.residuals[i]))
+        PointRead(
+            reference_value=p.reference_value,
+            reading=p.reading,
+            repeat_index=p.repeat_index,
+            used=bool(result.used[i]),
+            excluded_reason=reasons.get(i),
+            residual=float(result.residuals[i]),
+        )
         for i, p in enumerate(record.points)
     ]
     fit = FitRead(
-        family=result.family, formula=shared.get_family(result.family).formula,
-        options=dict(result.options), params=dict(result.params), stderr=result.stderr,
-        covariance=np.asarray(result.covariance).tolist(), rse=result.rse, dof=result.dof,
-        sigma_source=result.sigma_source, valid_range=result.valid_range,
-        monotone=result.monotone, engine_version=result.engine_version,
+        family=result.family,
+        formula=shared.get_family(result.family).formula,
+        options=dict(result.options),
+        params=dict(result.params),
+        stderr=result.stderr,
+        covariance=np.asarray(result.covariance).tolist(),
+        rse=result.rse,
+        dof=result.dof,
+        sigma_source=result.sigma_source,
+        valid_range=result.valid_range,
+        monotone=result.monotone,
+        engine_version=result.engine_version,
         fitted_at=stored.created_at,
     )
     return CalibrationRead(
-        id=record.id, unit=record.unit.serial, sensor_type=record.unit.sensor_type.name,
-        performed_at=record.performed_at, operator=record.operator, reference=record.reference,
-        kind=record.kind, ambient=record.ambient, notes=record.notes,
-        recorded_by=record.recorded_by, voided=record.voided_at is not None, points=points,
-        fit=fit, decision=DecisionRead(**stored.decision),
+        id=record.id,
+        unit=record.unit.serial,
+        sensor_type=record.unit.sensor_type.name,
+        performed_at=record.performed_at,
+        operator=record.operator,
+        reference=record.reference,
+        kind=record.kind,
+        ambient=record.ambient,
+        notes=record.notes,
+        recorded_by=record.recorded_by,
+        voided=record.voided_at is not None,
+        points=points,
+        fit=fit,
+        decision=DecisionRead(**stored.decision),
     )
 
 
@@ -122,5 +177,6 @@ def current_calibration(unit: Unit) -> CurrentCalibrationRead:
     last = latest_session(unit.sessions)
     if last is None:
         raise NotFound(f"unit {unit.serial!r} has no calibration yet")
-    return CurrentCalibrationRead(unit=unit.serial, due_on=due_on(unit),
-                                  calibration=calibration_read(last))
+    return CurrentCalibrationRead(
+        unit=unit.serial, due_on=due_on(unit), calibration=calibration_read(last)
+    )

@@ -17,8 +17,9 @@ router = APIRouter(prefix="/api/v1", tags=["fleet"])
 
 
 @router.post("/sensor-types", status_code=201)
-def create_sensor_type(data: SensorTypeCreate, session: SessionDep, user: ApiAdmin
-                       ) -> SensorTypeRead:
+def create_sensor_type(
+    data: SensorTypeCreate, session: SessionDep, user: ApiAdmin
+) -> SensorTypeRead:
     """Create a sensor type (admin)."""
     created = service.create_sensor_type(session, data)
     session.commit()
@@ -26,11 +27,12 @@ def create_sensor_type(data: SensorTypeCreate, session: SessionDep, user: ApiAdm
 
 
 @router.get("/sensor-types")
-def list_sensor_types(session: SessionDep, user: ApiViewer,
-                      page: Annotated[PageParams, Depends(page_params)]) -> Page[SensorTypeRead]:
+def list_sensor_types(
+    session: SessionDep, user: ApiViewer, page: Annotated[PageParams, Depends(page_params)]
+) -> Page[SensorTypeRead]:
     """Every sensor type, by name."""
     types = service.list_sensor_types(session)
-    items = [SensorTypeRead.model_validate(t) for t in types[page.offset:][:page.per_page]]
+    items = [SensorTypeRead.model_validate(t) for t in types[page.offset :][: page.per_page]]
     return Page(items=items, total=len(types), page=page.page, per_page=page.per_page)
 
 
@@ -43,15 +45,22 @@ def create_unit(data: UnitCreate, session: SessionDep, user: ApiTechnician) -> U
 
 
 @router.get("/units")
-def list_units(session: SessionDep, user: ApiViewer,
-               page: Annotated[PageParams, Depends(page_params)],
-               sensor_type: str | None = None, status: UnitStatus | None = None,
-               q: Annotated[str | None, Query(description="part of a serial")] = None,
-               ) -> Page[UnitRead]:
+def list_units(
+    session: SessionDep,
+    user: ApiViewer,
+    page: Annotated[PageParams, Depends(page_params)],
+    sensor_type: str | None = None,
+    status: UnitStatus | None = None,
+    q: Annotated[str | None, Query(description="part of a serial")] = None,
+) -> Page[UnitRead]:
     """Units by serial, filtered by type, status and part of the serial."""
     units, total = service.list_units(session, page, sensor_type=sensor_type, status=status, q=q)
-    return Page(items=[service.unit_read(u) for u in units], total=total, page=page.page,
-                per_page=page.per_page)
+    return Page(
+        items=[service.unit_read(u) for u in units],
+        total=total,
+        page=page.page,
+        per_page=page.per_page,
+    )
 
 
 @router.get("/units/{serial}")

@@ -24,16 +24,22 @@ class SensorTypeCreate(BaseModel):
     reading_unit: ShortText = Field(description="unit of the reading, e.g. counts")
     reading_min: float = Field(allow_inf_nan=False)
     reading_max: float = Field(allow_inf_nan=False)
-    families: list[str] = Field(min_length=1, description="model families to fit, first is "
-                                "the default (see the family catalog)")
+    families: list[str] = Field(
+        min_length=1,
+        description="model families to fit, first is the default (see the family catalog)",
+    )
     family_options: dict[str, dict[str, Any]] = Field(
-        default_factory=dict, description="options per family, e.g. {'polynomial': {'degree': 2}}")
-    tolerance_abs: float | None = Field(None, ge=0, allow_inf_nan=False,
-                                        description="absolute tolerance, value units")
-    tolerance_rel: float | None = Field(None, ge=0, allow_inf_nan=False,
-                                        description="relative tolerance, percent of value")
-    drift_limit_abs: float | None = Field(None, gt=0, allow_inf_nan=False,
-                                          description="largest allowed drift, value units")
+        default_factory=dict, description="options per family, e.g. {'polynomial': {'degree': 2}}"
+    )
+    tolerance_abs: float | None = Field(
+        None, ge=0, allow_inf_nan=False, description="absolute tolerance, value units"
+    )
+    tolerance_rel: float | None = Field(
+        None, ge=0, allow_inf_nan=False, description="relative tolerance, percent of value"
+    )
+    drift_limit_abs: float | None = Field(
+        None, gt=0, allow_inf_nan=False, description="largest allowed drift, value units"
+    )
     interval_days: int = Field(365, ge=1, le=3650, description="recalibration interval")
     tur: float = Field(4.0, gt=0, description="required test-uncertainty ratio")
 

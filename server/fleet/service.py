@@ -16,22 +16,26 @@ from server.fleet.schemas import SensorTypeCreate, UnitCreate, UnitRead
 from server.pagination import PageParams
 
 
-def check_family_choice(families: list[str], options: dict[str, dict[str, Any]]
-                        ) -> dict[str, dict[str, Any]]:
+def check_family_choice(
+    families: list[str], options: dict[str, dict[str, Any]]
+) -> dict[str, dict[str, Any]]:
     """Every family exists and its options are valid; returns the options with defaults."""
     checked: dict[str, dict[str, Any]] = {}
     for i, name in enumerate(families):
         if name not in shared.FAMILIES:
-            raise Invalid(f"unknown family {name!r}; the catalog has: "
-                          f"{', '.join(sorted(shared.FAMILIES))}", field=f"families.{i}")
+            raise Invalid(
+                f"unknown family {name!r}; the catalog has: {', '.join(sorted(shared.FAMILIES))}",
+                field=f"families.{i}",
+            )
         try:
             checked[name] = shared.get_family(name).check_options(options.get(name, {}))
         except shared.BadInput as exc:
             raise Invalid(str(exc), field=f"family_options.{name}") from exc
     stray = sorted(set(options) - set(families))
     if stray:
-        raise Invalid(f"options given for families not listed: {', '.join(stray)}",
-                      field="family_options")
+        raise Invalid(
+            f"options given for families not listed: {', '.join(stray)}", field="family_options"
+        )
     return checked
 
 
@@ -41,8 +45,7 @@ def create_sensor_type(session: Session, data: SensorTypeCreate) -> SensorType:
     if len(set(data.families)) != len(data.families):
         raise Invalid("a family is listed twice", field="families")
     options = check_family_choice(data.families, data.family_options)
-    sensor_type = SensorType(**data.model_dump(exclude={"family_options"}),
-                             family_options=options)
+    sensor_type = SensorType(**data.model_dump(exclude={"family_options"}), family_options=options)
     session.add(sensor_type)
     session.flush()
     return sensor_type
@@ -63,16 +66,23 @@ def create_unit(session: Session, data: UnitCreate) -> Unit:
     sensor_type = get_sensor_type(session, data.sensor_type, field="sensor_type")
     if session.scalar(select(Unit).where(Unit.serial == data.serial)) is not None:
         raise Conflict(f"unit {data.serial!r} exists already", field="serial")
-    unit = Unit(serial=data.serial, sensor_type=sensor_type, received_on=data.received_on,
-                notes=data.notes, status=UnitStatus.in_stock)
+    unit = Unit(
+        serial=data.serial,
+        sensor_type=sensor_type,
+        received_on=data.received_on,
+        notes=data.notes,
+        status=UnitStatus.in_stock,
+    )
     session.add(unit)
     session.flush()
     return unit
 
 
 def _with_history() -> tuple[Any, ...]:
-    return (selectinload(Unit.sensor_type),
-            selectinload(Unit.sessions).selectinload(CalibrationSession.fits))
+    return (
+        selectinload(Unit.sensor_type),
+        selectinload(Unit.sessions).selectinload(CalibrationSession.fits),
+    )
 
 
 def get_unit(session: Session, serial: str) -> Unit:
@@ -82,8 +92,14 @@ def get_unit(session: Session, serial: str) -> Unit:
     return unit
 
 
-def list_units(session: Session, page: PageParams, *, sensor_type: str | None = None,
-               status: UnitStatus | None = None, q: str | None = None) -> tuple[list[Unit], int]:
+def list_units(
+    session: Session,
+    page: PageParams,
+    *,
+    sensor_type: str | None = None,
+    status: UnitStatus | None = None,
+    q: str | None = None,
+) -> tuple[list[Unit], int]:
     """Units ordered by serial, filtered; ``q`` matches part of the serial (any case)."""
     query = select(Unit)
     if sensor_type:
@@ -94,8 +110,12 @@ def list_units(session: Session, page: PageParams, *, sensor_type: str | None = 
         pattern = "%" + q.strip().lower().replace("%", r"\%").replace("_", r"\_") + "%"
         query = query.where(func.lower(Unit.serial).like(pattern, escape="\\"))
     total = session.scalar(select(func.count()).select_from(query.subquery())) or 0
-    units = session.scalars(query.options(*_with_history()).order_by(Unit.serial)
-                            .offset(page.offset).limit(page.per_page))
+    units = session.scalars(
+        query.options(*_with_history())
+        .order_by(Unit.serial)
+        .offset(page.offset)
+        .limit(page.per_page)
+    )
     return list(units), total
 
 

@@ -56,7 +56,7 @@ class MonomialFamily:
     def evaluate(self, params: Array, reading: Array, options: Options) -> Array:
         coef = np.zeros(self.degree(options) + 1)
         coef[self.powers(options)] = params
-        return np.polynomial.polynomial.polyval(reading, coef)
+        return np.asarray(np.polynomial.polynomial.polyval(reading, coef), dtype=np.float64)
 
     def jacobian(self, params: Array, reading: Array, options: Options) -> Array:
         return np.stack([reading**k for k in self.powers(options)], axis=-1)

@@ -96,4 +96,5 @@ def unscaled_covariance(jac: Array, weight: Array) -> Array:
     if s.min() <= 1e-12 * s.max():
         raise SingularFit("the parameters are not separately determined by these points")
     v = vt.T / s
-    return (v @ v.T) / np.outer(norms, norms)
+    cov: Array = (v @ v.T) / np.outer(norms, norms)
+    return cov

@@ -3,12 +3,14 @@
 Only r0 enters non-linearly, so it is found by variable projection: for each trial r0 the linear
 parameters (k, v0) are solved exactly, and the residual sum of squares is minimised over r0 alone
 (a log-spaced scan, then a bounded scalar search). A final Gauss–Newton polish of all three
-parameters with the analytic Jacobian gives the estimate the covariance is taken at. The search keeps
-r + r0 > 0 over the points, so the curve has no pole inside the calibrated range.
+parameters with the analytic Jacobian gives the estimate the covariance is taken at. The search
+keeps r + r0 > 0 over the points, so the curve has no pole inside the calibrated range.
 """
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+from types import MappingProxyType
 from typing import Any
 
 import numpy as np
@@ -31,7 +33,7 @@ class InverseOffset:
     name = "inverse_offset"
     formula = "value = k / (r + r0) + v0"
     typical = "infrared rangefinder"
-    options: dict[str, Any] = {}
+    options: Mapping[str, Any] = MappingProxyType({})
     foldback = True
 
     def check_options(self, options: Options) -> dict[str, Any]:
@@ -42,7 +44,8 @@ class InverseOffset:
 
     def evaluate(self, params: Array, reading: Array, options: Options) -> Array:
         k, r0, v0 = params
-        return k / (reading + r0) + v0
+        out: Array = k / (reading + r0) + v0
+        return out
 
     def jacobian(self, params: Array, reading: Array, options: Options) -> Array:
         k, r0, _ = params
@@ -70,8 +73,9 @@ class InverseOffset:
                 "a line fits them as well"
             )
         lo, hi = logs[max(best - 1, 0)], logs[min(best + 1, len(logs) - 1)]
-        found = minimize_scalar(lambda x: projected(x)[0], bounds=(lo, hi), method="bounded",
-                                options={"xatol": 1e-10})
+        found = minimize_scalar(
+            lambda x: projected(x)[0], bounds=(lo, hi), method="bounded", options={"xatol": 1e-10}
+        )
         start = projected(float(found.x))[1]
 
         def resid(p: Array) -> Array:
@@ -80,8 +84,9 @@ class InverseOffset:
         def jac(p: Array) -> Array:
             return self.jacobian(p, reading, options) * sw[:, None]
 
-        polished = least_squares(resid, start, jac=jac, method="lm", x_scale="jac",
-                                 xtol=1e-15, ftol=1e-15, gtol=1e-15)
+        polished = least_squares(
+            resid, start, jac=jac, method="lm", x_scale="jac", xtol=1e-15, ftol=1e-15, gtol=1e-15
+        )
         params = polished.x if polished.cost <= 0.5 * found.fun else start
         if np.any(reading + params[1] <= 0):
             raise SingularFit("inverse_offset: the fitted pole r = -r0 lies inside the readings")

@@ -6,21 +6,40 @@ import numpy as np
 import pytest
 
 POT = {
-    "name": "pot 300", "quantity": "angle", "value_unit": "deg", "reading_unit": "counts",
-    "reading_min": 0, "reading_max": 4095, "families": ["line"], "tolerance_abs": 1.0,
+    "name": "pot 300",
+    "quantity": "angle",
+    "value_unit": "deg",
+    "reading_unit": "counts",
+    "reading_min": 0,
+    "reading_max": 4095,
+    "families": ["line"],
+    "tolerance_abs": 1.0,
     "interval_days": 365,
 }
 RANGER = {
-    "name": "ranger", "quantity": "distance", "value_unit": "mm", "reading_unit": "counts",
-    "reading_min": 0, "reading_max": 4095, "families": ["inverse_offset"], "tolerance_abs": 3.0,
-    "tolerance_rel": 2.0, "interval_days": 180,
+    "name": "ranger",
+    "quantity": "distance",
+    "value_unit": "mm",
+    "reading_unit": "counts",
+    "reading_min": 0,
+    "reading_max": 4095,
+    "families": ["inverse_offset"],
+    "tolerance_abs": 3.0,
+    "tolerance_rel": 2.0,
+    "interval_days": 180,
 }
 WHEN = "2026-11-02T09:30:00+00:00"
 
 
 def session_body(points, **extra):
-    return {"performed_at": WHEN, "operator": "kim", "reference": "angle jig #2",
-            "kind": "incoming", "points": points, **extra}
+    return {
+        "performed_at": WHEN,
+        "operator": "kim",
+        "reference": "angle jig #2",
+        "kind": "incoming",
+        "points": points,
+        **extra,
+    }
 
 
 def pot_points(offsets=None):
@@ -30,21 +49,27 @@ def pot_points(offsets=None):
     if offsets is not None:
         deviations = deviations + offsets
     degrees = -7.0 + 0.0733 * counts + deviations
-    return [{"reference_value": float(v), "reading": float(r)} for r, v in zip(counts, degrees)]
+    pairs = zip(counts, degrees, strict=True)
+    return [{"reference_value": float(v), "reading": float(r)} for r, v in pairs]
 
 
 @pytest.fixture
 def pot_unit(client, admin):
     assert client.post("/api/v1/sensor-types", json=POT, headers=admin).status_code == 201
-    assert client.post("/api/v1/units", json={"serial": "P-7", "sensor_type": "pot 300"},
-                       headers=admin).status_code == 201
+    assert (
+        client.post(
+            "/api/v1/units", json={"serial": "P-7", "sensor_type": "pot 300"}, headers=admin
+        ).status_code
+        == 201
+    )
     return "P-7"
 
 
 def test_calibration_is_fitted_judged_and_current(client, technician, pot_unit):
     points = pot_points()
-    created = client.post(f"/api/v1/units/{pot_unit}/calibrations", json=session_body(points),
-                          headers=technician)
+    created = client.post(
+        f"/api/v1/units/{pot_unit}/calibrations", json=session_body(points), headers=technician
+    )
     assert created.status_code == 201, created.text
     body = created.json()
     # Reference: numpy.polyfit (independent least-squares implementation).
@@ -72,8 +97,11 @@ def test_calibration_is_fitted_judged_and_current(client, technician, pot_unit):
 def test_point_outside_tolerance_fails_with_reason(client, technician, pot_unit):
     offsets = np.zeros(11)
     offsets[5] = 2.5  # a 2.5 deg error against a 1 deg tolerance
-    body = client.post(f"/api/v1/units/{pot_unit}/calibrations",
-                       json=session_body(pot_points(offsets)), headers=technician).json()
+    body = client.post(
+        f"/api/v1/units/{pot_unit}/calibrations",
+        json=session_body(pot_points(offsets)),
+        headers=technician,
+    ).json()
     assert body["decision"]["passed"] is False
     assert "outside tolerance" in body["decision"]["reasons"][0]
     latest = client.get(f"/api/v1/units/{pot_unit}", headers=technician).json()
@@ -81,17 +109,23 @@ def test_point_outside_tolerance_fails_with_reason(client, technician, pot_unit)
 
 
 def test_newest_session_is_current_and_repeats_are_numbered(client, technician, pot_unit):
-    first = client.post(f"/api/v1/units/{pot_unit}/calibrations", json=session_body(pot_points()),
-                        headers=technician).json()
-    later = pot_points() + [pot_points()[3]]
-    second = client.post(f"/api/v1/units/{pot_unit}/calibrations",
-                         json=session_body(later, performed_at="2027-01-05T10:00:00Z",
-                                           kind="periodic"), headers=technician).json()
+    first = client.post(
+        f"/api/v1/units/{pot_unit}/calibrations",
+        json=session_body(pot_points()),
+        headers=technician,
+    ).json()
+    later = [*pot_points(), pot_points()[3]]
+    second = client.post(
+        f"/api/v1/units/{pot_unit}/calibrations",
+        json=session_body(later, performed_at="2027-01-05T10:00:00Z", kind="periodic"),
+        headers=technician,
+    ).json()
     assert second["points"][-1]["repeat_index"] == 1
     current = client.get(f"/api/v1/units/{pot_unit}/calibration", headers=technician).json()
     assert current["calibration"]["id"] == second["id"] != first["id"]
-    assert client.get(f"/api/v1/units/{pot_unit}", headers=technician).json()[
-        "calibration_count"] == 2
+    assert (
+        client.get(f"/api/v1/units/{pot_unit}", headers=technician).json()["calibration_count"] == 2
+    )
 
 
 @pytest.mark.parametrize(
@@ -108,26 +142,28 @@ def test_newest_session_is_current_and_repeats_are_numbered(client, technician, 
         (lambda b: [p.update(reading=5.0) for p in b["points"]], "points"),  # constant readings
     ],
 )
-def test_bad_calibration_names_the_field_and_writes_nothing(client, technician, pot_unit,
-                                                            mutate, field):
+def test_bad_calibration_names_the_field_and_writes_nothing(
+    client, technician, pot_unit, mutate, field
+):
     body = session_body(pot_points())
     mutate(body)
-    response = client.post(f"/api/v1/units/{pot_unit}/calibrations", json=body,
-                           headers=technician)
+    response = client.post(f"/api/v1/units/{pot_unit}/calibrations", json=body, headers=technician)
     assert response.status_code == 422, response.text
     assert response.json()["field"] == field
     assert response.json()["detail"]
     unit = client.get(f"/api/v1/units/{pot_unit}", headers=technician).json()
     assert unit["calibration_count"] == 0
-    assert client.get(f"/api/v1/units/{pot_unit}/calibration",
-                      headers=technician).status_code == 404
+    assert (
+        client.get(f"/api/v1/units/{pot_unit}/calibration", headers=technician).status_code == 404
+    )
 
 
 def test_user_exclusion_is_kept_with_its_reason(client, technician, pot_unit):
     points = pot_points(np.r_[0, 0, 0, 9.0, np.zeros(7)])
     points[3].update(excluded=True, exclude_reason="jig slipped")
-    body = client.post(f"/api/v1/units/{pot_unit}/calibrations", json=session_body(points),
-                       headers=technician).json()
+    body = client.post(
+        f"/api/v1/units/{pot_unit}/calibrations", json=session_body(points), headers=technician
+    ).json()
     assert body["points"][3]["used"] is False
     assert body["points"][3]["excluded_reason"] == "jig slipped"
     assert body["fit"]["dof"] == 8
@@ -142,10 +178,11 @@ def test_rangefinder_fold_back_points_are_excluded_with_reason(client, admin):
     mm = np.array([30.0, 50.0, 70, 90, 120, 160, 220, 300, 400, 550, 700])
     counts = 41000 / (mm + 12) + 35
     counts[:2] = [330.0, 460.0]
-    points = [{"reference_value": float(v), "reading": float(round(r))}
-              for v, r in zip(mm, counts)]
-    body = client.post("/api/v1/units/R-1/calibrations", json=session_body(points),
-                       headers=admin).json()
+    pairs = zip(mm, counts, strict=True)
+    points = [{"reference_value": float(v), "reading": float(round(r))} for v, r in pairs]
+    body = client.post(
+        "/api/v1/units/R-1/calibrations", json=session_body(points), headers=admin
+    ).json()
     assert [p["used"] for p in body["points"][:3]] == [False, False, True]
     assert all("fold-back" in p["excluded_reason"] for p in body["points"][:2])
     assert body["fit"]["valid_range"][1] == round(41000 / 82 + 35)
@@ -156,12 +193,60 @@ def test_rangefinder_fold_back_points_are_excluded_with_reason(client, admin):
 
 
 def test_unknown_unit_and_openapi(client, technician):
-    missing = client.post("/api/v1/units/NOPE/calibrations", json=session_body(pot_points()),
-                          headers=technician)
+    missing = client.post(
+        "/api/v1/units/NOPE/calibrations", json=session_body(pot_points()), headers=technician
+    )
     assert missing.status_code == 404
     schema = client.get("/openapi.json").json()
-    for path in ("/api/v1/sensor-types", "/api/v1/units", "/api/v1/units/{serial}",
-                 "/api/v1/units/{serial}/calibrations", "/api/v1/units/{serial}/calibration"):
+    for path in (
+        "/api/v1/sensor-types",
+        "/api/v1/units",
+        "/api/v1/units/{serial}",
+        "/api/v1/units/{serial}/calibrations",
+        "/api/v1/units/{serial}/calibration",
+    ):
         assert path in schema["paths"], path
     created = schema["paths"]["/api/v1/units/{serial}/calibrations"]["post"]["responses"]["201"]
     assert created["content"]["application/json"]["schema"]["$ref"].endswith("CalibrationRead")
+
+
+def test_csv_upload_matches_json_and_names_bad_rows(client, technician, pot_unit):
+    points = pot_points()
+    rows = "reference_value;reading\n" + "".join(
+        f"{p['reference_value']!r};{p['reading']!r}\n" for p in points
+    )
+    form = {
+        "performed_at": WHEN,
+        "operator": "kim",
+        "reference": "angle jig #2",
+        "kind": "incoming",
+    }
+    url = f"/api/v1/units/{pot_unit}/calibrations/csv"
+    created = client.post(
+        url, data=form, files={"file": ("pts.csv", rows.encode())}, headers=technician
+    )
+    assert created.status_code == 201, created.text
+    by_json = client.post(
+        f"/api/v1/units/{pot_unit}/calibrations", json=session_body(points), headers=technician
+    ).json()
+    assert created.json()["fit"]["params"] == by_json["fit"]["params"]
+
+    bad = "reference_value,reading\n1,2\n3,four\n"
+    response = client.post(
+        url, data=form, files={"file": ("pts.csv", bad.encode())}, headers=technician
+    )
+    assert response.status_code == 422
+    assert response.json()["field"] == "file" and "row 3" in response.json()["detail"]
+    no_header = client.post(
+        url, data=form, files={"file": ("pts.csv", b"1,2\n3,4\n")}, headers=technician
+    )
+    assert no_header.status_code == 422 and "header" in no_header.json()["detail"]
+    naive = client.post(
+        url,
+        data={**form, "performed_at": "2026-11-02T09:30:00"},
+        files={"file": ("pts.csv", rows.encode())},
+        headers=technician,
+    )
+    assert naive.status_code == 422 and naive.json()["field"] == "performed_at"
+    unit = client.get(f"/api/v1/units/{pot_unit}", headers=technician).json()
+    assert unit["calibration_count"] == 2

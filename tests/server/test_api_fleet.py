@@ -5,14 +5,28 @@ from __future__ import annotations
 import pytest
 
 RANGEFINDER = {
-    "name": "IR ranger", "quantity": "distance", "value_unit": "mm", "reading_unit": "counts",
-    "reading_min": 0, "reading_max": 4095, "families": ["inverse_offset"],
-    "tolerance_abs": 3.0, "tolerance_rel": 2.0, "drift_limit_abs": 5.0, "interval_days": 180,
+    "name": "IR ranger",
+    "quantity": "distance",
+    "value_unit": "mm",
+    "reading_unit": "counts",
+    "reading_min": 0,
+    "reading_max": 4095,
+    "families": ["inverse_offset"],
+    "tolerance_abs": 3.0,
+    "tolerance_rel": 2.0,
+    "drift_limit_abs": 5.0,
+    "interval_days": 180,
 }
 LOADCELL = {
-    "name": "load cell 50 N", "quantity": "force", "value_unit": "N", "reading_unit": "mV/V",
-    "reading_min": 0, "reading_max": 2.2, "families": ["polynomial", "line"],
-    "family_options": {"polynomial": {"degree": 2}}, "tolerance_rel": 0.5,
+    "name": "load cell 50 N",
+    "quantity": "force",
+    "value_unit": "N",
+    "reading_unit": "mV/V",
+    "reading_min": 0,
+    "reading_max": 2.2,
+    "families": ["polynomial", "line"],
+    "family_options": {"polynomial": {"degree": 2}},
+    "tolerance_rel": 0.5,
 }
 
 
@@ -33,8 +47,11 @@ def test_sensor_type_round_trip(client, admin):
         ({"tolerance_abs": None, "tolerance_rel": None}, "", "tolerance"),
         ({"families": ["nonesuch"]}, "families.0", "inverse_offset"),
         ({"families": []}, "families", "at least 1"),
-        ({"family_options": {"inverse_offset": {"degree": 3}}}, "family_options.inverse_offset",
-         "unknown option"),
+        (
+            {"family_options": {"inverse_offset": {"degree": 3}}},
+            "family_options.inverse_offset",
+            "unknown option",
+        ),
         ({"tolerance_abs": -1}, "tolerance_abs", "greater than or equal"),
         ({"colour": "red"}, "colour", "Extra inputs"),
     ],
@@ -59,8 +76,9 @@ def test_roles_and_tokens(client, admin, technician, viewer):
     assert client.get("/api/v1/units").status_code == 401
     bogus = {"Authorization": "Bearer not-a-token"}
     assert client.get("/api/v1/units", headers=bogus).status_code == 401
-    assert client.post("/api/v1/sensor-types", json=RANGEFINDER,
-                       headers=technician).status_code == 403
+    assert (
+        client.post("/api/v1/sensor-types", json=RANGEFINDER, headers=technician).status_code == 403
+    )
     assert client.post("/api/v1/sensor-types", json=RANGEFINDER, headers=admin).status_code == 201
     unit = {"serial": "R-1", "sensor_type": "IR ranger"}
     assert client.post("/api/v1/units", json=unit, headers=viewer).status_code == 403
@@ -72,16 +90,33 @@ def test_units_create_get_list_filter_paginate(client, admin):
     client.post("/api/v1/sensor-types", json=RANGEFINDER, headers=admin)
     client.post("/api/v1/sensor-types", json=LOADCELL, headers=admin)
     for i in range(7):
-        r = client.post("/api/v1/units", headers=admin, json={
-            "serial": f"IR-{i:03d}", "sensor_type": "IR ranger", "received_on": "2026-03-0%d" % (i + 1)})
+        r = client.post(
+            "/api/v1/units",
+            headers=admin,
+            json={
+                "serial": f"IR-{i:03d}",
+                "sensor_type": "IR ranger",
+                "received_on": f"2026-03-0{i + 1}",
+            },
+        )
         assert r.status_code == 201, r.text
-    client.post("/api/v1/units", headers=admin, json={"serial": "LC-9", "sensor_type": "load cell 50 N"})
+    client.post(
+        "/api/v1/units", headers=admin, json={"serial": "LC-9", "sensor_type": "load cell 50 N"}
+    )
 
     one = client.get("/api/v1/units/IR-003", headers=admin).json()
-    assert one == {"serial": "IR-003", "sensor_type": "IR ranger", "status": "in_stock",
-                   "installed_in": None, "received_on": "2026-03-04", "notes": None,
-                   "calibration_count": 0, "last_calibrated_at": None, "last_passed": None,
-                   "due_on": None}
+    assert one == {
+        "serial": "IR-003",
+        "sensor_type": "IR ranger",
+        "status": "in_stock",
+        "installed_in": None,
+        "received_on": "2026-03-04",
+        "notes": None,
+        "calibration_count": 0,
+        "last_calibrated_at": None,
+        "last_passed": None,
+        "due_on": None,
+    }
 
     page = client.get("/api/v1/units?per_page=3&page=2", headers=admin).json()
     assert page["total"] == 8 and page["page"] == 2 and page["per_page"] == 3
@@ -98,13 +133,18 @@ def test_units_create_get_list_filter_paginate(client, admin):
 
 def test_unit_errors(client, admin):
     client.post("/api/v1/sensor-types", json=RANGEFINDER, headers=admin)
-    missing_type = client.post("/api/v1/units", headers=admin,
-                               json={"serial": "X", "sensor_type": "nope"})
+    missing_type = client.post(
+        "/api/v1/units", headers=admin, json={"serial": "X", "sensor_type": "nope"}
+    )
     assert missing_type.status_code == 404 and missing_type.json()["field"] == "sensor_type"
     client.post("/api/v1/units", headers=admin, json={"serial": "X", "sensor_type": "IR ranger"})
-    dup = client.post("/api/v1/units", headers=admin, json={"serial": "X", "sensor_type": "IR ranger"})
+    dup = client.post(
+        "/api/v1/units", headers=admin, json={"serial": "X", "sensor_type": "IR ranger"}
+    )
     assert dup.status_code == 409 and dup.json()["field"] == "serial"
-    blank = client.post("/api/v1/units", headers=admin, json={"serial": "  ", "sensor_type": "IR ranger"})
+    blank = client.post(
+        "/api/v1/units", headers=admin, json={"serial": "  ", "sensor_type": "IR ranger"}
+    )
     assert blank.status_code == 422 and blank.json()["field"] == "serial"
     gone = client.get("/api/v1/units/NOPE", headers=admin)
     assert gone.status_code == 404 and "NOPE" in gone.json()["detail"]
