@@ -23,7 +23,6 @@ from shared.families.base import (
     Solution,
     check_known_options,
     unscaled_covariance,
-    weighted_lstsq,
 )
 
 SCAN = np.logspace(-4, 4, 81)  # (r_min + r0) as a multiple of the reading span
@@ -57,15 +56,22 @@ class InverseOffset:
         span = float(np.ptp(reading)) or abs(r_min) or 1.0
         sw = np.sqrt(weight)
 
-        def projected(log_d: float) -> tuple[float, Array]:
-            r0 = np.exp(log_d) * span - r_min
-            design = np.stack([1.0 / (reading + r0), np.ones_like(reading)], axis=-1)
-            coef, _ = weighted_lstsq(design, value, weight)
-            resid = (design @ coef - value) * sw
-            return float(resid @ resid), np.array([coef[0], r0, coef[1]])
+        w_total = float(weight.sum())
+        v_mean = float(weight @ value) / w_total
+        dv = value - v_mean
+
+        def projected(log_d: Array) -> tuple[Array, Array, Array]:
+            """Cost, k, v0 for each trial (r_min + r0) = exp(log_d) * span, closed form."""
+            r0 = np.exp(np.atleast_1d(log_d))[:, None] * span - r_min
+            x = 1.0 / (reading + r0)
+            dx = x - (x @ weight)[:, None] / w_total
+            k = ((dx * dv) @ weight) / ((dx * dx) @ weight)
+            resid = dv - k[:, None] * dx
+            v0 = v_mean - k * (x @ weight) / w_total
+            return (resid * resid) @ weight, k, v0
 
         logs = np.log(SCAN)
-        costs = np.array([projected(x)[0] for x in logs])
+        costs = projected(logs)[0]
         best = int(np.argmin(costs))
         if best == len(logs) - 1:
             raise SingularFit(
@@ -74,9 +80,13 @@ class InverseOffset:
             )
         lo, hi = logs[max(best - 1, 0)], logs[min(best + 1, len(logs) - 1)]
         found = minimize_scalar(
-            lambda x: projected(x)[0], bounds=(lo, hi), method="bounded", options={"xatol": 1e-10}
+            lambda x: float(projected(x)[0][0]),
+            bounds=(lo, hi),
+            method="bounded",
+            options={"xatol": 1e-10},
         )
-        start = projected(float(found.x))[1]
+        _, k_best, v0_best = projected(found.x)
+        start = np.array([k_best[0], np.exp(found.x) * span - r_min, v0_best[0]])
 
         def resid(p: Array) -> Array:
             return (self.evaluate(p, reading, options) - value) * sw

@@ -131,13 +131,13 @@ def main() -> int:
         "ours also computes the covariance, fold-back detection and the monotonicity check.\n"
         "time per call, best of a few repeats (time.perf_counter); ratio = ours / baseline\n"
     )
-    header = f"{'case':<34} | {'ours (ms)':>10} | {'baseline (ms)':>13} | {'ratio':>6}"
+    header = f"{'case':<38} | {'ours (ms)':>10} | {'baseline (ms)':>13} | {'ratio':>6}"
     print(header)
     print("-" * len(header))
     for case in cases:
         ours = best_ms(case.ours, case.loops, case.repeats)
         base = best_ms(case.baseline, case.loops, case.repeats)
-        print(f"{case.name:<34} | {ours:>10.3f} | {base:>13.3f} | {ours / base:>6.2f}")
+        print(f"{case.name:<38} | {ours:>10.3f} | {base:>13.3f} | {ours / base:>6.2f}")
     print()
     ok = True
     for case in cases:
@@ -145,7 +145,7 @@ def main() -> int:
         ok &= same
         verdict = "same parameters" if same else "MISMATCH"
         print(
-            f"{case.name:<34}: {verdict} (max relative difference {case.agreement:.1e}, "
+            f"{case.name:<38}: {verdict} (max relative difference {case.agreement:.1e}, "
             f"limit {AGREE_REL:.0e})"
         )
     return 0 if ok else 1

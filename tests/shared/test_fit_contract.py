@@ -96,7 +96,7 @@ def well_posed(draw: st.DrawFn) -> tuple[str, dict[str, Any], np.ndarray, np.nda
         gap = draw(st.floats(0.05, 3.0)) * span  # r_min + r0: the pole lies this far below r_min
         r0 = gap - lo
         v0 = draw(st.floats(-1e3, 1e3))
-        truth = k / (r + r0) + v0
+        truth: np.ndarray = k / (r + r0) + v0
     else:
         coef = [draw(st.floats(-1e2, 1e2)) for _ in range(n_params)]
         x = (r - lo) / span  # coefficients of a well-scaled polynomial in x
@@ -294,8 +294,9 @@ def test_unknown_option_lists_the_allowed_ones(
     family: str, option: str, allowed: list[str]
 ) -> None:
     r = np.linspace(1.0, 10.0, 8)
+    unknown: dict[str, Any] = {option: 2}
     with pytest.raises(BadInput) as err:
-        fit(family, r, 100.0 / r, **{option: 2})
+        fit(family, r, 100.0 / r, **unknown)
     message = str(err.value)
     assert option in message
     for name in allowed:
