@@ -1,4 +1,22 @@
-"""fit() and fit_many(): least-squares calibration curves as frozen, JSON-round-trippable values."""
+"""fit() and fit_many(): least-squares calibration curves as frozen, JSON-round-trippable values.
+
+Where the noise is. A calibration point has a reference value (from a jig, a reference
+thermometer, known masses) and a reading (what the unit output). Either may carry the noise:
+
+* ``noise="value"`` (default): the scatter is in the value; plain least squares in value units.
+* ``noise="reading"``: the scatter is in the reading (ADC noise, a resistance meter). A fit of
+  value = f(reading) then weights each point by 1 / f'(r)^2, the propagated reading noise
+  (effective variance, iterated because f' depends on the fit), and a new reading's noise enters a
+  converted value as |f'(r)| u_r — large on the steep part of a curve, small on the flat part.
+  An unweighted fit would spread one average noise level over the whole range instead.
+* ``u_value=`` / ``u_reading=``: known standard uncertainties (absolute); each point's variance in
+  the space the family is fitted in is u_v^2 + (f' u_r)^2 (value space) or u_r^2 + (u_v / f')^2
+  (reading space), and the covariance is absolute (``sigma_source="given"``).
+
+Families stated the natural way round (``direction = "reading_from_value"``, e.g. an RTD's
+resistance as a function of temperature) are fitted in reading space and inverted exactly; the
+same noise models apply.
+"""
 
 from __future__ import annotations
 
@@ -9,21 +27,40 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import ArrayLike
 
-from shared.errors import BadInput, TooFewPoints
+from shared.errors import BadInput, SingularFit, TooFewPoints
 from shared.families import get_family
-from shared.families.base import Array
+from shared.families.base import Array, Family, Solution
 from shared.foldback import find_foldback
 from shared.uncertainty import K_CONVENTION, coverage_factor, propagate
 from shared.version import ENGINE_VERSION
 
 SigmaSource = Literal["residuals", "given"]
+Noise = Literal["value", "reading"]
 MONOTONE_GRID = 513
+EV_MAX_ITER = 30  # effective-variance reweighting: iterations at most
+EV_RTOL = 1e-9  # ... until the parameters change by less than this (relative)
 
 
 def _frozen(values: ArrayLike, dtype: type = np.float64) -> Array:
     arr: Array = np.array(values, dtype=dtype)
     arr.setflags(write=False)
     return arr
+
+
+def direction_of(family: Family) -> str:
+    """``"value_from_reading"`` (most families) or ``"reading_from_value"`` (fitted naturally)."""
+    return str(getattr(family, "direction", "value_from_reading"))
+
+
+def slope_of(family: Family, params: Array, reading: Array, options: Mapping[str, Any]) -> Array:
+    """d value / d reading: the family's own ``slope`` if it has one, else a central difference."""
+    own = getattr(family, "slope", None)
+    if own is not None:
+        return np.asarray(own(params, reading, options), dtype=float)
+    h = 1e-6 * np.maximum(np.abs(reading), 1e-3 * max(float(np.max(np.abs(reading))), 1.0))
+    up = family.evaluate(params, reading + h, options)
+    down = family.evaluate(params, reading - h, options)
+    return np.asarray((up - down) / (2.0 * h), dtype=float)
 
 
 @dataclass(frozen=True, slots=True)
@@ -48,10 +85,18 @@ class Fit:
 
     ``sigma_source`` says what the covariance means: ``"residuals"`` — scaled by the residual
     variance (uncertainty estimated from the scatter of the points); ``"given"`` — absolute, from
-    the value uncertainties the caller supplied.
+    the uncertainties the caller supplied.
+    ``noise`` says where the scatter was taken to be (see the module docstring);
+    ``noise_value_sd`` (value units) and ``noise_reading_sd`` (reading units) are one new
+    observation's noise, used by ``value_interval``.
+    ``rse`` is the residual standard error of the values, sqrt(sum(residual^2) / dof), value units;
+    ``scale`` is sqrt(sum(weight * residual^2) / dof) in the space the family is fitted in, the
+    factor the covariance was scaled by when ``sigma_source="residuals"`` (equal to ``rse`` for an
+    unweighted value-direction fit).
     ``reading``, ``value`` are every input point; ``used`` marks those that entered the fit;
-    ``excluded`` gives (index, reason) for each point left out; ``residuals`` = value - f(reading)
-    for every point (extrapolated for excluded ones).
+    ``weights`` are the final least-squares weights (0 for points not used); ``excluded`` gives
+    (index, reason) for each point left out; ``residuals`` = value - f(reading) for every point
+    (extrapolated for excluded ones).
     """
 
     family: str
@@ -60,11 +105,15 @@ class Fit:
     covariance: Array
     dof: int
     rse: float
+    scale: float
     sigma_source: SigmaSource
-    noise_sd: float
+    noise: Noise
+    noise_value_sd: float
+    noise_reading_sd: float
     reading: Array
     value: Array
     used: Array
+    weights: Array
     residuals: Array
     excluded: tuple[tuple[int, str], ...]
     valid_range: tuple[float, float]
@@ -84,6 +133,10 @@ class Fit:
     @property
     def n_used(self) -> int:
         return int(self.used.sum())
+
+    @property
+    def direction(self) -> str:
+        return direction_of(get_family(self.family))
 
     def _vector(self) -> Array:
         return np.array(list(self.params.values()), dtype=float)
@@ -107,6 +160,11 @@ class Fit:
             return out
         return np.where(self.in_range(r), out, np.nan)
 
+    def slope(self, reading: ArrayLike) -> Array:
+        """d value / d reading of the fitted curve (sensitivity to the reading)."""
+        r = np.atleast_1d(np.asarray(reading, dtype=float))
+        return slope_of(get_family(self.family), self._vector(), r, self.options)
+
     def _gradient(self, r: Array) -> Array:
         return np.atleast_2d(get_family(self.family).jacobian(self._vector(), r, self.options))
 
@@ -125,15 +183,24 @@ class Fit:
         u = propagate(self._gradient(r), self.covariance)
         return self._interval(r, u, self._k(level))
 
+    def new_reading_u(self, reading: ArrayLike) -> Array:
+        """Standard uncertainty one new observation's noise adds to a converted value."""
+        r = np.atleast_1d(np.asarray(reading, dtype=float))
+        var = np.full(r.shape, self.noise_value_sd**2)
+        if self.noise_reading_sd:
+            var = var + (self.slope(r) * self.noise_reading_sd) ** 2
+        return np.asarray(np.sqrt(var), dtype=float)
+
     def value_interval(self, reading: ArrayLike, level: float | None = 0.95) -> Interval:
         """Prediction interval of the value for a new single reading at ``reading``.
 
-        u^2 = g^T V g + noise_sd^2 (GUM law of propagation plus one observation's noise); coverage
-        from Student t at the fit's dof (``level``), or k = 2 with ``level=None``.
+        u^2 = g^T V g + u_new^2: GUM law of propagation for the constants plus one observation's
+        noise (``new_reading_u``); coverage from Student t at the fit's dof (``level``), or
+        k = 2 with ``level=None``.
         """
         r = np.atleast_1d(np.asarray(reading, dtype=float))
         u_curve = propagate(self._gradient(r), self.covariance)
-        u = np.sqrt(u_curve**2 + self.noise_sd**2)
+        u = np.sqrt(u_curve**2 + self.new_reading_u(r) ** 2)
         return self._interval(r, u, self._k(level))
 
     def _interval(self, r: Array, u: Array, k: float) -> Interval:
@@ -157,11 +224,15 @@ class Fit:
             "covariance": self.covariance.tolist(),
             "dof": self.dof,
             "rse": self.rse,
+            "scale": self.scale,
             "sigma_source": self.sigma_source,
-            "noise_sd": self.noise_sd,
+            "noise": self.noise,
+            "noise_value_sd": self.noise_value_sd,
+            "noise_reading_sd": self.noise_reading_sd,
             "reading": self.reading.tolist(),
             "value": self.value.tolist(),
             "used": self.used.tolist(),
+            "weights": self.weights.tolist(),
             "residuals": self.residuals.tolist(),
             "excluded": [[i, why] for i, why in self.excluded],
             "valid_range": list(self.valid_range),
@@ -178,11 +249,15 @@ class Fit:
             covariance=_frozen(d["covariance"]),
             dof=int(d["dof"]),
             rse=float(d["rse"]),
+            scale=float(d["scale"]),
             sigma_source=d["sigma_source"],
-            noise_sd=float(d["noise_sd"]),
+            noise=d["noise"],
+            noise_value_sd=float(d["noise_value_sd"]),
+            noise_reading_sd=float(d["noise_reading_sd"]),
             reading=_frozen(d["reading"]),
             value=_frozen(d["value"]),
             used=_frozen(d["used"], dtype=bool),
+            weights=_frozen(d["weights"]),
             residuals=_frozen(d["residuals"]),
             excluded=tuple((int(i), str(why)) for i, why in d["excluded"]),
             valid_range=(float(d["valid_range"][0]), float(d["valid_range"][1])),
@@ -208,6 +283,15 @@ def _as_points(reading: ArrayLike, value: ArrayLike) -> tuple[Array, Array]:
     return r, v
 
 
+def _uncertainty(name: str, given: ArrayLike | None, shape: tuple[int, ...]) -> Array | None:
+    if given is None:
+        return None
+    u = np.broadcast_to(np.asarray(given, dtype=float), shape)
+    if not np.all(np.isfinite(u) & (u >= 0)):
+        raise BadInput(f"{name} must be finite and not negative for every point")
+    return np.array(u)
+
+
 def _is_monotone(family_fit: Fit) -> bool:
     lo, hi = family_fit.valid_range
     grid = np.linspace(lo, hi, MONOTONE_GRID)
@@ -215,12 +299,62 @@ def _is_monotone(family_fit: Fit) -> bool:
     return bool(np.all(steps >= 0) or np.all(steps <= 0))
 
 
+def _solve_weighted(
+    fam: Family,
+    opts: Mapping[str, Any],
+    r: Array,
+    v: Array,
+    u_v: Array,
+    u_r: Array,
+) -> tuple[Solution, Array]:
+    """Solve with effective-variance weights in the family's fitting space, iterated.
+
+    Each point's variance in value space is u_v^2 + (f' u_r)^2; in reading space it is
+    u_r^2 + (u_v / f')^2. Where a term involves f' the weights are recomputed from the latest
+    fit until the parameters settle.
+    """
+    natural = direction_of(fam) == "reading_from_value"
+    needs_slope = bool(np.any(u_v > 0)) if natural else bool(np.any(u_r > 0))
+    var = u_r**2 if natural else u_v**2
+    # the first pass is unweighted when the direct term alone leaves points without variance
+    weight = _weights_from(var) if np.all(var > 0) else np.ones_like(var)
+    sol = fam.solve(r, v, weight, opts)
+    if not needs_slope:
+        return sol, weight
+    for _ in range(EV_MAX_ITER):
+        f_prime = slope_of(fam, sol.params, r, opts)
+        if not np.all(np.isfinite(f_prime)) or np.any(f_prime == 0):
+            raise SingularFit(
+                "the fitted curve is flat at a point: reading noise cannot be "
+                "propagated to the value there"
+            )
+        var = u_r**2 + (u_v / f_prime) ** 2 if natural else u_v**2 + (f_prime * u_r) ** 2
+        weight = _weights_from(var)
+        new = fam.solve(r, v, weight, opts)
+        change = np.max(np.abs(new.params - sol.params) / np.maximum(np.abs(new.params), 1e-300))
+        sol = new
+        if change < EV_RTOL:
+            break
+    return sol, weight
+
+
+def _weights_from(var: Array) -> Array:
+    if np.any(var <= 0):
+        raise BadInput(
+            "u_value and u_reading leave a point with zero uncertainty; every point "
+            "needs a positive one"
+        )
+    return 1.0 / var
+
+
 def fit(
     family: str,
     reading: ArrayLike,
     value: ArrayLike,
     *,
+    noise: Noise = "value",
     u_value: ArrayLike | None = None,
+    u_reading: ArrayLike | None = None,
     exclude: Mapping[int, str] | None = None,
     **options: Any,
 ) -> Fit:
@@ -231,8 +365,11 @@ def fit(
     family : name in ``FAMILIES`` (see the family table in DEVELOPERS.md).
     reading : what the unit outputs (ADC counts, ohms, mV, ...), one entry per point.
     value : the reference value of the physical quantity (mm, degC, N, ...), same length.
-    u_value : standard uncertainty of each value, in value units. With it the covariance is
-        absolute (``sigma_source="given"``); without it, it is estimated from the residuals.
+    noise : ``"value"`` or ``"reading"``: where the scatter is, when no uncertainties are given
+        (see the module docstring). The covariance is then estimated from the residuals.
+    u_value, u_reading : standard uncertainties of each value (value units) and each reading
+        (reading units), scalars or one per point. With either, the covariance is absolute
+        (``sigma_source="given"``) and ``noise`` is ignored.
     exclude : point index -> reason, for points a user has excluded; kept in ``Fit.excluded``.
     **options : family options, e.g. ``degree=3`` for ``polynomial``; unknown names are an error.
 
@@ -243,14 +380,18 @@ def fit(
     fam = get_family(family)
     opts = fam.check_options(options)
     r, v = _as_points(reading, value)
-    source: SigmaSource
-    if u_value is None:
-        weight, source = np.ones_like(r), "residuals"
+    if noise not in ("value", "reading"):
+        raise BadInput(f"noise must be 'value' or 'reading', not {noise!r}")
+    given_v = _uncertainty("u_value", u_value, r.shape)
+    given_r = _uncertainty("u_reading", u_reading, r.shape)
+    source: SigmaSource = "residuals" if given_v is None and given_r is None else "given"
+    if source == "given":
+        u_v = given_v if given_v is not None else np.zeros_like(r)
+        u_r = given_r if given_r is not None else np.zeros_like(r)
+        noise = "reading" if given_v is None else "value"
     else:
-        u = np.broadcast_to(np.asarray(u_value, dtype=float), r.shape)
-        if not np.all(np.isfinite(u) & (u > 0)):
-            raise BadInput("u_value must be positive and finite for every point")
-        weight, source = 1.0 / u**2, "given"
+        u_v = np.ones_like(r) if noise == "value" else np.zeros_like(r)
+        u_r = np.ones_like(r) if noise == "reading" else np.zeros_like(r)
 
     excluded: dict[int, str] = {}
     for i, why in (exclude or {}).items():
@@ -272,19 +413,28 @@ def fit(
             f"{family} has {len(names)} parameters and needs at least "
             f"{len(names) + 1} usable points; got {int(used.sum())}"
         )
-    ru, vu, wu = r[used], v[used], weight[used]
+    ru, vu = r[used], v[used]
     if np.ptp(ru) == 0:
         raise BadInput("all usable readings are equal: the curve cannot be determined")
 
-    sol = fam.solve(ru, vu, wu, opts)
+    sol, wu = _solve_weighted(fam, opts, ru, vu, u_v[used], u_r[used])
     resid_all = v - fam.evaluate(sol.params, r, opts)
-    dof = int(used.sum()) - len(names)
-    chi2 = float(np.sum(wu * resid_all[used] ** 2))
-    rse = float(np.sqrt(chi2 / dof))
-    if source == "residuals":
-        cov, noise = sol.cov_unscaled * rse**2, rse
+    if direction_of(fam) == "reading_from_value":
+        fit_space = ru - np.asarray(fam.reading_of(sol.params, vu, opts))  # type: ignore[attr-defined]
     else:
-        cov, noise = sol.cov_unscaled, float(np.sqrt(np.mean(1.0 / wu)))
+        fit_space = resid_all[used]
+    dof = int(used.sum()) - len(names)
+    scale = float(np.sqrt(np.sum(wu * fit_space**2) / dof))
+    rse = float(np.sqrt(np.sum(resid_all[used] ** 2) / dof))
+    if source == "residuals":
+        cov = sol.cov_unscaled * scale**2
+        noise_v, noise_r = (scale, 0.0) if noise == "value" else (0.0, scale)
+    else:
+        cov = sol.cov_unscaled
+        noise_v = float(np.sqrt(np.mean(u_v[used] ** 2)))
+        noise_r = float(np.sqrt(np.mean(u_r[used] ** 2)))
+    weights = np.zeros_like(r)
+    weights[used] = wu
     result = Fit(
         family=family,
         options=opts,
@@ -292,11 +442,15 @@ def fit(
         covariance=_frozen(cov),
         dof=dof,
         rse=rse,
+        scale=scale,
         sigma_source=source,
-        noise_sd=noise,
+        noise=noise,
+        noise_value_sd=noise_v,
+        noise_reading_sd=noise_r,
         reading=_frozen(r),
         value=_frozen(v),
         used=_frozen(used, dtype=bool),
+        weights=_frozen(weights),
         residuals=_frozen(resid_all),
         excluded=tuple(sorted(excluded.items())),
         valid_range=(float(ru.min()), float(ru.max())),
