@@ -26,10 +26,11 @@ from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import ArrayLike
+from scipy.optimize import least_squares
 
 from shared.errors import BadInput, SingularFit, TooFewPoints
 from shared.families import get_family
-from shared.families.base import Array, Family, Solution
+from shared.families.base import Array, Family, Solution, unscaled_covariance
 from shared.foldback import find_foldback
 from shared.uncertainty import K_CONVENTION, coverage_factor, propagate
 from shared.version import ENGINE_VERSION
@@ -38,6 +39,7 @@ SigmaSource = Literal["residuals", "given"]
 Noise = Literal["value", "reading"]
 MONOTONE_GRID = 513
 EV_MAX_ITER = 30  # effective-variance reweighting: iterations at most
+EV_START_ITER = 4  # reweighted solves that start the direct effective-variance minimisation
 EV_RTOL = 1e-9  # ... until the parameters change by less than this (relative)
 
 
@@ -307,35 +309,60 @@ def _solve_weighted(
     u_v: Array,
     u_r: Array,
 ) -> tuple[Solution, Array]:
-    """Solve with effective-variance weights in the family's fitting space, iterated.
+    """Least squares with each point's variance in the family's fitting space.
 
-    Each point's variance in value space is u_v^2 + (f' u_r)^2; in reading space it is
-    u_r^2 + (u_v / f')^2. Where a term involves f' the weights are recomputed from the latest
-    fit until the parameters settle.
+    In value space a point's variance is u_v^2 + (f' u_r)^2; in reading space u_r^2 + (u_v/f')^2.
+    When a term involves f', a few reweighted solves (weights from the latest fit) give a start,
+    and for value-direction families the effective-variance objective
+    sum (v - f(r))^2 / (u_v^2 + f'(r)^2 u_r^2) is then minimised over all parameters, f' included:
+    with reading noise alone that is, to first order, a fit in the reading direction (exactly so
+    for a line, where it reproduces the inverse of the reading-on-value regression).
     """
     natural = direction_of(fam) == "reading_from_value"
     needs_slope = bool(np.any(u_v > 0)) if natural else bool(np.any(u_r > 0))
     var = u_r**2 if natural else u_v**2
-    # the first pass is unweighted when the direct term alone leaves points without variance
-    weight = _weights_from(var) if np.all(var > 0) else np.ones_like(var)
-    sol = fam.solve(r, v, weight, opts)
     if not needs_slope:
-        return sol, weight
-    for _ in range(EV_MAX_ITER):
-        f_prime = slope_of(fam, sol.params, r, opts)
+        weight = _weights_from(var)
+        return fam.solve(r, v, weight, opts), weight
+    # the first pass is unweighted when the direct term alone leaves points without variance
+    sol = fam.solve(r, v, _weights_from(var) if np.all(var > 0) else np.ones_like(var), opts)
+
+    def variance(params: Array) -> Array:
+        f_prime = slope_of(fam, params, r, opts)
         if not np.all(np.isfinite(f_prime)) or np.any(f_prime == 0):
             raise SingularFit(
                 "the fitted curve is flat at a point: reading noise cannot be "
                 "propagated to the value there"
             )
-        var = u_r**2 + (u_v / f_prime) ** 2 if natural else u_v**2 + (f_prime * u_r) ** 2
-        weight = _weights_from(var)
+        return u_r**2 + (u_v / f_prime) ** 2 if natural else u_v**2 + (f_prime * u_r) ** 2
+
+    for _ in range(EV_MAX_ITER if natural else EV_START_ITER):
+        weight = _weights_from(variance(sol.params))
         new = fam.solve(r, v, weight, opts)
         change = np.max(np.abs(new.params - sol.params) / np.maximum(np.abs(new.params), 1e-300))
         sol = new
         if change < EV_RTOL:
             break
-    return sol, weight
+    if natural:
+        return sol, _weights_from(variance(sol.params))
+
+    def normalised(params: Array) -> Array:
+        return (v - fam.evaluate(params, r, opts)) / np.sqrt(variance(params))
+
+    found = least_squares(
+        normalised,
+        sol.params,
+        jac="3-point",
+        method="trf",
+        x_scale="jac",
+        xtol=1e-15,
+        ftol=1e-15,
+        gtol=1e-15,
+    )
+    if not found.success or not np.all(np.isfinite(found.x)):
+        raise SingularFit(f"the effective-variance fit did not converge: {found.message}")
+    cov = unscaled_covariance(np.asarray(found.jac, dtype=float), np.ones_like(r))
+    return Solution(params=found.x, cov_unscaled=cov), _weights_from(variance(found.x))
 
 
 def _weights_from(var: Array) -> Array:
