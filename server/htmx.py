@@ -10,6 +10,8 @@ from fastapi import Request
 from fastapi.responses import HTMLResponse
 from jinja2 import Environment, FileSystemLoader, StrictUndefined, select_autoescape
 
+from server.formatting import FILTERS
+
 WEB = Path(__file__).resolve().parent.parent / "web"
 
 env = Environment(
@@ -20,6 +22,7 @@ env = Environment(
     lstrip_blocks=True,
 )
 env.filters["tojson_compact"] = lambda v: json.dumps(v, separators=(",", ":"))
+env.filters.update(FILTERS)
 
 
 def is_partial(request: Request) -> bool:
@@ -30,6 +33,7 @@ def is_partial(request: Request) -> bool:
 def render(
     request: Request,
     name: str,
+    /,
     *,
     block: str,
     status_code: int = 200,
@@ -40,6 +44,7 @@ def render(
     template = env.get_template(name)
     ctx.setdefault("user", getattr(request.state, "user", None))
     ctx["request"] = request
+    ctx.setdefault("status_code", status_code)
     if is_partial(request):
         html = "".join(template.blocks[block](template.new_context(ctx)))
     else:

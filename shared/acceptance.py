@@ -87,11 +87,12 @@ def decide(
     worst = int(np.argmax(error - allowed))
     ratio = np.divide(allowed, big_u, out=np.full_like(allowed, np.inf), where=big_u > 0)
     reasons = []
+    sp = " " if unit else ""
     n_out = int(np.sum(error > allowed))
     if n_out:
         reasons.append(
-            f"{n_out} point(s) outside tolerance; worst error {error[worst]:.4g} "
-            f"at {value[worst]:.6g} where {allowed[worst]:.4g} is allowed"
+            f"{n_out} point(s) outside tolerance; worst error {error[worst]:.4g}{sp}{unit} "
+            f"at {value[worst]:.6g}{sp}{unit}, where {allowed[worst]:.4g}{sp}{unit} is allowed"
         )
     if ratio.min() < tur:
         reasons.append(f"test-uncertainty ratio {ratio.min():.3g}:1 is below {tur:g}:1")

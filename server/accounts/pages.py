@@ -38,7 +38,7 @@ def signin_page(request: Request, next: str = "/") -> HTMLResponse:
         user=None,
         next=_safe_next(next),
         error=None,
-        name="",
+        username="",  # not "name": render() takes the template's name as its parameter `name`
     )
 
 
@@ -61,7 +61,7 @@ def signin(
             user=None,
             next=_safe_next(next),
             error=exc.message,
-            name=name,
+            username=name,
         )
     session.commit()
     response = RedirectResponse(_safe_next(next), status_code=303)

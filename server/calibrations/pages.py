@@ -1,7 +1,315 @@
-"""Browser pages (server-rendered, htmx for partial updates)."""
+"""Browser pages of a unit: its current constants, plots, history, and adding a calibration."""
 
 from __future__ import annotations
 
-from fastapi import APIRouter
+import math
+import re
+from dataclasses import dataclass, replace
+from datetime import UTC, datetime
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Form, Request
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from pydantic import ValidationError
+
+import shared
+from server.accounts.deps import PageTechnician, PageViewer
+from server.accounts.models import ROLE_RANK, Role, User
+from server.calibrations import charts, service
+from server.calibrations.models import SessionKind, latest_session
+from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
+from server.db import SessionDep
+from server.errors import Invalid
+from server.fleet.models import Unit
+from server.fleet.pages import unit_url
+from server.fleet.service import due_on, get_unit
+from server.htmx import is_partial, render
 
 router = APIRouter(include_in_schema=False)
+
+EARLIER_SHOWN = 5  # earlier calibrations overlaid on the curve plot
+SEPARATORS = re.compile(r"[,;\t ]+")
+HEADER = re.compile(r"[A-Za-z]{2,}")  # words, not an exponent such as 1e3
+DATETIME_LOCAL = "%Y-%m-%dT%H:%M"
+
+
+@dataclass(frozen=True, slots=True)
+class CalibrationForm:
+    """What the "add a calibration" form holds: typed text, kept as is on a re-render."""
+
+    performed_at: str
+    operator: str
+    reference: str
+    kind: str
+    family: str = ""
+    ambient: str = ""
+    notes: str = ""
+    points: str = ""
+    error: str | None = None
+    error_field: str | None = None
+
+
+def blank_form(unit: Unit, user: User) -> CalibrationForm:
+    """Now (UTC), the signed-in user, and the reference used last time on this unit."""
+    last = max(unit.sessions, key=lambda s: (s.performed_at, s.id), default=None)
+    return CalibrationForm(
+        performed_at=datetime.now(UTC).strftime(DATETIME_LOCAL),
+        operator=user.name,
+        reference=last.reference if last else "",
+        kind=(SessionKind.periodic if unit.sessions else SessionKind.incoming).value,
+        family=unit.sensor_type.families[0],
+    )
+
+
+def parse_points(text: str) -> list[PointIn]:
+    """Pasted lines of "reference_value, reading" (comma, tab, semicolon or spaces between).
+
+    Blank lines and lines starting with # are skipped, and so is a first line with words in it
+    (a header). Any other line that is not two finite numbers is an error naming the line.
+    """
+    points: list[PointIn] = []
+    seen_content = False
+    for number, line in enumerate(text.splitlines(), start=1):
+        stripped = line.strip()
+        if not stripped or stripped.startswith("#"):
+            continue
+        fields = [f for f in SEPARATORS.split(stripped) if f]
+        if not seen_content and HEADER.search(stripped) and not all(map(_is_float, fields)):
+            seen_content = True  # a header line such as "reference_value, reading"
+            continue
+        seen_content = True
+        if len(fields) != 2:
+            hint = " (use a point as the decimal mark)" if "," in stripped else ""
+            raise Invalid(
+                f"line {number}: expected two numbers, the reference value then the "
+                f"reading; found {len(fields)} field(s) in “{stripped}”{hint}",
+                field="points",
+            )
+        values = []
+        for field in fields:
+            if not _is_float(field):
+                raise Invalid(
+                    f"line {number}: “{field}” is not a number (in “{stripped}”)", field="points"
+                )
+            value = float(field)
+            if not math.isfinite(value):
+                raise Invalid(
+                    f"line {number}: “{field}” is not a finite number (in “{stripped}”)",
+                    field="points",
+                )
+            values.append(value)
+        points.append(PointIn(reference_value=values[0], reading=values[1]))
+    if len(points) < 2:
+        raise Invalid(
+            f"paste at least two points, one per line as “reference value, reading”; "
+            f"found {len(points)}",
+            field="points",
+        )
+    return points
+
+
+def _is_float(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _performed_at(text: str) -> datetime:
+    """A datetime-local value (no zone) read as UTC; a value with an offset keeps it."""
+    try:
+        when = datetime.fromisoformat(text.strip())
+    except ValueError:
+        raise Invalid(
+            "give the date and time of the calibration (UTC), e.g. 2026-03-14T09:30",
+            field="performed_at",
+        ) from None
+    return when.replace(tzinfo=UTC) if when.tzinfo is None else when
+
+
+def calibration_from_form(form: CalibrationForm) -> CalibrationCreate:
+    """The API's CalibrationCreate from the form's text, or Invalid naming the field at fault."""
+    performed_at = _performed_at(form.performed_at)
+    if not form.operator.strip():
+        raise Invalid("who did the calibration? give the operator", field="operator")
+    if not form.reference.strip():
+        raise Invalid("name the reference instrument or jig used", field="reference")
+    if form.kind not in SessionKind.__members__:
+        raise Invalid(f"unknown kind {form.kind!r}", field="kind")
+    points = parse_points(form.points)
+    try:
+        return CalibrationCreate(
+            performed_at=performed_at,
+            operator=form.operator,
+            reference=form.reference,
+            kind=SessionKind(form.kind),
+            family=form.family or None,
+            ambient=form.ambient.strip() or None,
+            notes=form.notes.strip() or None,
+            points=points,
+        )
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        field = ".".join(str(p) for p in first["loc"])
+        raise Invalid(f"{field}: {first['msg']}", field=field.split(".")[0]) from None
+
+
+def unit_context(
+    unit: Unit, user: User, form: CalibrationForm, saved: int | None = None
+) -> dict[str, Any]:
+    """Everything units/page.html shows: constants, figures, history and the form."""
+    sensor_type = unit.sensor_type
+    axes = charts.Axes(sensor_type.quantity, sensor_type.value_unit, sensor_type.reading_unit)
+    current = latest_session(unit.sessions)
+    ctx: dict[str, Any] = {
+        "unit": unit,
+        "sensor_type": sensor_type,
+        "current": current,
+        "due": due_on(unit),
+        "today": datetime.now(UTC).date(),
+        "form": form,
+        "saved": saved,
+        "kinds": list(SessionKind),
+        "unit_url": unit_url(unit.serial),
+        "can_calibrate": ROLE_RANK[user.role] >= ROLE_RANK[Role.technician],
+        "fit": None,
+        "decision": None,
+        "constants": [],
+        "formula": None,
+        "value_range": None,
+        "residual_format": "%g",
+        "curve_json": None,
+        "residual_json": None,
+        "points": [],
+    }
+    history = []
+    for record in sorted(unit.sessions, key=lambda s: (s.performed_at, s.id), reverse=True):
+        stored = record.current_fit
+        history.append(
+            {
+                "record": record,
+                "fit": stored,
+                "rse": stored.result["rse"] if stored else None,
+                "n_points": len(stored.result["reading"]) if stored else None,
+            }
+        )
+    ctx["history"] = history
+    ctx["just_saved"] = next((h for h in history if h["record"].id == saved), None)
+    if current is None:
+        return ctx
+
+    fit, stored = service.fit_of(current)
+    decision = DecisionRead(**stored.decision)
+    earlier = [
+        (f"{s.performed_at:%Y-%m-%d}", service.fit_of(s)[0])
+        for s in sorted(unit.sessions, key=lambda s: (s.performed_at, s.id), reverse=True)
+        if s is not current
+        and s.voided_at is None
+        and s.current_fit is not None
+        and (s.performed_at, s.id) < (current.performed_at, current.id)
+    ][:EARLIER_SHOWN]
+    reasons = dict(fit.excluded)
+    stderr = fit.stderr
+    ctx.update(
+        fit=fit,
+        decision=decision,
+        formula=shared.get_family(fit.family).formula,
+        constants=[(name, value, stderr[name]) for name, value in fit.params.items()],
+        value_range=tuple(float(v) for v in fit.to_value(list(fit.valid_range))),
+        earlier_count=len(earlier),
+        curve_json=charts.curve_figure(fit, axes, earlier).to_json(),
+        residual_json=charts.residual_figure(
+            fit,
+            axes,
+            tolerance_abs=sensor_type.tolerance_abs,
+            tolerance_rel=sensor_type.tolerance_rel,
+        ).to_json(),
+        points=[
+            {
+                "reference_value": p.reference_value,
+                "reading": p.reading,
+                "residual": float(fit.residuals[i]),
+                "used": bool(fit.used[i]),
+                "outside": bool(fit.used[i])
+                and abs(fit.residuals[i])
+                > charts.allowed_error(
+                    p.reference_value, sensor_type.tolerance_abs, sensor_type.tolerance_rel
+                ),
+                "reason": reasons.get(i),
+            }
+            for i, p in enumerate(current.points)
+        ],
+        residual_format=f"%.{residual_decimals(fit.rse)}f",
+    )
+    return ctx
+
+
+def residual_decimals(rse: float) -> int:
+    """Decimals that show residuals one digit finer than the scatter (rse to two digits)."""
+    if not math.isfinite(rse) or rse <= 0:
+        return 3
+    return max(0, min(8, 2 - math.floor(math.log10(rse))))
+
+
+@router.get("/units/{serial}")
+def unit_page(
+    request: Request, serial: str, session: SessionDep, user: PageViewer, saved: int | None = None
+) -> HTMLResponse:
+    """One unit: the constants to use, its curve and residuals, history, and the form."""
+    unit = get_unit(session, serial)
+    return render(
+        request,
+        "units/page.html",
+        block="unit",
+        **unit_context(unit, user, blank_form(unit, user), saved),
+    )
+
+
+@router.post("/units/{serial}/calibrations")
+def add_calibration(
+    request: Request,
+    serial: str,
+    session: SessionDep,
+    user: PageTechnician,
+    performed_at: Annotated[str, Form()] = "",
+    operator: Annotated[str, Form()] = "",
+    reference: Annotated[str, Form()] = "",
+    kind: Annotated[str, Form()] = "",
+    family: Annotated[str, Form()] = "",
+    ambient: Annotated[str, Form()] = "",
+    notes: Annotated[str, Form()] = "",
+    points: Annotated[str, Form()] = "",
+) -> Response:
+    """Store a calibration typed into the unit page; a form to fix (422) when it cannot be."""
+    unit = get_unit(session, serial)
+    form = CalibrationForm(
+        performed_at=performed_at,
+        operator=operator,
+        reference=reference,
+        kind=kind,
+        family=family,
+        ambient=ambient,
+        notes=notes,
+        points=points,
+    )
+    try:
+        record = service.run_calibration(
+            session, unit, calibration_from_form(form), recorded_by=user.name
+        )
+    except Invalid as exc:
+        session.rollback()
+        unit = get_unit(session, serial)
+        failed = replace(form, error=exc.message, error_field=(exc.field or "").split(".")[0])
+        return render(
+            request,
+            "units/page.html",
+            block="calibration_form",
+            status_code=422,
+            **unit_context(unit, user, failed),
+        )
+    session.commit()
+    target = f"{unit_url(unit.serial)}?saved={record.id}"
+    if is_partial(request):
+        return Response(status_code=200, headers={"HX-Redirect": target, "Vary": "HX-Request"})
+    return RedirectResponse(target, status_code=303)

@@ -1,0 +1,174 @@
+"""The front end in real Chromium against a real server: sign in, find, read, calibrate."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+from typing import Any
+
+import pytest
+from sqlalchemy import func, select
+
+import shared
+from server.calibrations.models import CalibrationSession
+from server.db import make_engine
+from server.fleet.models import Unit
+from tests.web.conftest import sign_in
+from tests.web.seed import TECHNICIAN, Fleet, ir_readings, paste_text
+
+pytestmark = pytest.mark.browser
+
+
+def session_count(url: str, serial: str) -> int:
+    engine = make_engine(url)
+    try:
+        with engine.connect() as conn:
+            return int(
+                conn.scalar(
+                    select(func.count())
+                    .select_from(CalibrationSession)
+                    .join(Unit)
+                    .where(Unit.serial == serial)
+                )
+                or 0
+            )
+    finally:
+        engine.dispose()
+
+
+def serials_shown(page: Any) -> list[str]:
+    return [s.strip() for s in page.locator("table.units td.serial").all_inner_texts()]
+
+
+def test_sign_in_through_the_form(anonymous_page: Any, server: str, artifacts: Path) -> None:
+    page = anonymous_page
+    page.goto("/units/IR-0104")
+    page.wait_for_url(re.compile(r"/signin\?next=/units/IR-0104$"))
+    page.screenshot(path=artifacts / "signin.png", full_page=True)
+
+    sign_in(page, TECHNICIAN[0], "not-the-password")
+    assert "wrong user name or password" in page.locator("#signin-form .alert").inner_text()
+    assert page.input_value("#signin-name") == TECHNICIAN[0]
+
+    sign_in(page, *TECHNICIAN)
+    page.wait_for_url(f"{server}/units/IR-0104")  # back where the sign-in was asked for
+    assert page.locator(".who-name").inner_text() == TECHNICIAN[0]
+
+
+def test_fleet_lists_the_seeded_units(
+    page: Any, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    _, fleet = live_db
+    page.goto("/")
+    shown = serials_shown(page)
+    for serial in (fleet.calibrated, fleet.failing, fleet.spare, fleet.pot):
+        assert serial in shown
+    row = page.locator("table.units tbody tr", has_text=fleet.failing)
+    assert row.locator(".badge").inner_text().endswith("FAIL")
+    assert "overdue" in row.inner_text()
+    assert page.locator(".pager .count").inner_text().startswith("units 1–")
+    page.screenshot(path=artifacts / "fleet.png", full_page=True)
+
+
+def test_search_box_filters_live(page: Any, server: str, live_db: tuple[str, Fleet]) -> None:
+    _, fleet = live_db
+    page.goto("/")
+    page.evaluate("window.__same_document = true")
+    page.locator("#q").press_sequentially("0104", delay=40)
+    page.wait_for_function("document.querySelectorAll('table.units td.serial').length === 1")
+    assert serials_shown(page) == [fleet.spare]
+    assert page.evaluate("window.__same_document === true"), "the page was reloaded, not swapped"
+    page.wait_for_url(re.compile(r"[?&]q=0104"))  # hx-push-url: the filter survives a reload
+
+    page.select_option("#type", label="Rotary pot 270 deg")
+    page.fill("#q", "")
+    page.wait_for_function(
+        "document.querySelector('table.units td.serial')?.innerText === 'POT-0001'"
+    )
+    assert serials_shown(page) == [fleet.pot]
+
+
+def test_scanning_a_serial_lands_on_the_unit(
+    page: Any, server: str, live_db: tuple[str, Fleet]
+) -> None:
+    _, fleet = live_db
+    page.goto("/")
+    page.locator("#q").press_sequentially(fleet.failing.lower(), delay=10)  # any case
+    page.keyboard.press("Enter")
+    page.wait_for_url(f"{server}/units/{fleet.failing}")
+    assert page.locator("h1.serial-title").inner_text() == fleet.failing
+
+    # the next scan, from the unit page: "/" focuses the box in the top bar
+    page.keyboard.press("/")
+    page.keyboard.type(fleet.calibrated)
+    page.keyboard.press("Enter")
+    page.wait_for_url(f"{server}/units/{fleet.calibrated}")
+
+
+def test_unit_page_draws_plots_and_constants(
+    page: Any, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    _, fleet = live_db
+    page.goto(f"/units/{fleet.calibrated}")
+    page.wait_for_selector("#curve-plot.js-plotly-plot .main-svg")
+    page.wait_for_selector("#residual-plot.js-plotly-plot .main-svg")
+    # points, band, fitted curve and one earlier calibration are all drawn
+    assert page.locator("#curve-plot .scatterlayer .trace").count() >= 5
+    constants = page.locator(".constants table.numbers tbody th").all_inner_texts()
+    assert constants == ["k", "r0", "v0"]
+    assert "counts" in page.locator(".constants .kv").first.inner_text()
+    assert page.locator(".decision .badge").inner_text().endswith("PASS")
+    assert page.locator("#history tbody tr").count() == 2
+    page.screenshot(path=artifacts / "unit.png", full_page=True)
+
+
+def test_add_a_calibration_through_the_form(
+    page: Any, server: str, live_db: tuple[str, Fleet]
+) -> None:
+    url, fleet = live_db
+    points = ir_readings(201_000, 29, 15, seed=18)
+    fitted = shared.fit("inverse_offset", [r for _, r in points], [v for v, _ in points])
+    expected = "PASS" if shared.decide(fitted, 3, 2).passed else "FAIL"
+    before = session_count(url, fleet.fresh)
+
+    page.goto(f"/units/{fleet.fresh}")
+    assert page.input_value("#operator") == TECHNICIAN[0]
+    page.fill("#performed_at", "2026-11-30T10:15")
+    page.fill("#reference", "distance jig DJ-2")
+    page.select_option("#kind", "incoming")
+    page.fill("#points", paste_text(points))
+    page.click("#calibrate button[type=submit]")
+
+    page.wait_for_url(re.compile(rf"/units/{fleet.fresh}\?saved=\d+$"))
+    row = page.locator("#history tbody tr.just-saved")
+    assert "2026-11-30 10:15 UTC" in row.inner_text()
+    assert row.locator(".badge").inner_text().endswith(expected)
+    assert page.locator(".notice").inner_text().startswith("Calibration of 2026-11-30 10:15 UTC")
+    page.wait_for_selector("#curve-plot.js-plotly-plot .main-svg")
+    assert session_count(url, fleet.fresh) == before + 1
+
+
+def test_bad_paste_names_the_line_and_stores_nothing(
+    page: Any, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    url, fleet = live_db
+    before = session_count(url, fleet.fresh)
+    pasted = "reference_mm, reading\n100, 2709\n150, 1505\n200; 1O51\n250, 830"
+    page.goto(f"/units/{fleet.fresh}")
+    page.evaluate("window.__same_document = true")
+    page.fill("#reference", "distance jig DJ-2")
+    page.fill("#points", pasted)
+    with page.expect_response(lambda r: r.request.method == "POST") as answer:
+        page.click("#calibrate button[type=submit]")
+    assert answer.value.status == 422
+    error = page.locator("#calibration-error")
+    error.wait_for()
+    assert "line 4" in error.inner_text()
+    assert "1O51" in error.inner_text()
+    assert page.input_value("#points") == pasted  # what was typed is kept
+    assert page.input_value("#reference") == "distance jig DJ-2"
+    assert page.get_attribute("#points", "aria-invalid") == "true"
+    assert page.evaluate("window.__same_document === true")  # swapped in place by htmx
+    assert session_count(url, fleet.fresh) == before
+    page.locator("#calibrate").scroll_into_view_if_needed()
+    page.screenshot(path=artifacts / "form-error.png", full_page=True)
