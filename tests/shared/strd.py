@@ -1,10 +1,19 @@
-"""Loader for NIST StRD linear-regression files (``tests/data/strd/*.dat``).
+"""Loader for NIST StRD files (``tests/data/strd/*.dat``), linear and nonlinear.
 
 A file is a 60-line header followed by the data. The header names the line ranges of the
-certified values and of the data ("Certified Values (lines 31 to 46)", "Data (lines 61 to 96)");
-the certified block lists each parameter as ``B<k>  estimate  standard-deviation`` and then the
-"Residual Standard Deviation". Numbers are Fortran-style (``.591E0``, ``0.1E-03``, possibly with a
-``D`` exponent). Data rows hold ``y`` then ``x``.
+certified values and of the data ("Certified Values (lines 31 to 46)", "Data (lines 61 to 96)")
+and the number of observations ("36 Observations"). Data rows hold ``y`` then ``x``. Numbers are
+Fortran-style (``.591E0``, ``0.1E-03``, possibly with a ``D`` exponent).
+
+The certified block differs between the two kinds of file:
+
+- linear: each parameter reads ``B<k>  estimate  standard-deviation`` (B0..Bp, or B1 alone for a
+  line through zero such as NoInt1); then "Residual" / "Standard Deviation <value>"; the degrees
+  of freedom are in the Residual row of the certified analysis of variance table
+  (``Residual  34  sum-of-squares  mean-square``).
+- nonlinear: each parameter reads ``b<k> = start-1 start-2 estimate standard-deviation`` (b1..bp;
+  the two starting values are not read); then lines "Residual Standard Deviation: <value>" and
+  "Degrees of Freedom: <n>".
 """
 
 from __future__ import annotations
@@ -20,9 +29,17 @@ DATA_DIR = Path(__file__).resolve().parent.parent / "data" / "strd"
 
 _NUMBER = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[EeDd][-+]?\d+)?"
 _RANGE = re.compile(r"^\s*(Certified Values|Data)\s*\(lines\s+(\d+)\s+to\s+(\d+)\)", re.MULTILINE)
+_OBSERVATIONS = re.compile(r"^\s*(\d+)\s+Observations\s*$", re.MULTILINE)
+# linear files
 _PARAM = re.compile(rf"^\s*B(\d+)\s+({_NUMBER})\s+({_NUMBER})\s*$")
 _RESIDUAL_SD = re.compile(rf"^\s*Standard Deviation\s+({_NUMBER})\s*$")
-_OBSERVATIONS = re.compile(r"^\s*(\d+)\s+Observations\s*$", re.MULTILINE)
+_ANOVA_RESIDUAL = re.compile(rf"^\s*Residual\s+(\d+)\s+{_NUMBER}\s+{_NUMBER}\s*$")
+# nonlinear files
+_NONLINEAR_PARAM = re.compile(
+    rf"^\s*b(\d+)\s*=\s*{_NUMBER}\s+{_NUMBER}\s+({_NUMBER})\s+({_NUMBER})\s*$"
+)
+_NONLINEAR_RESIDUAL_SD = re.compile(rf"^\s*Residual Standard Deviation:\s*({_NUMBER})\s*$")
+_NONLINEAR_DOF = re.compile(r"^\s*Degrees of Freedom:\s*(\d+)\s*$")
 
 
 def fortran_float(text: str) -> float:
@@ -34,7 +51,9 @@ def fortran_float(text: str) -> float:
 class StrdDataset:
     """One StRD problem: its data and NIST's certified results.
 
-    ``estimates[k]`` and ``std_devs[k]`` belong to B<k> (the coefficient of x**k).
+    ``estimates[k]`` and ``std_devs[k]`` belong to parameter ``first_index + k`` in the file's
+    order: B<k> (the coefficient of x**k) when ``first_index`` is 0, B<k+1> for NoInt1, b<k+1> for
+    the nonlinear files. ``dof`` is the certified residual degrees of freedom.
     """
 
     name: str
@@ -42,7 +61,9 @@ class StrdDataset:
     y: NDArray[np.float64]
     estimates: tuple[float, ...]
     std_devs: tuple[float, ...]
+    first_index: int
     residual_sd: float
+    dof: int
 
 
 def _line_range(header: str, block: str) -> tuple[int, int]:
@@ -53,7 +74,7 @@ def _line_range(header: str, block: str) -> tuple[int, int]:
 
 
 def load_strd(name: str) -> StrdDataset:
-    """Parse ``tests/data/strd/<name>.dat``."""
+    """Parse ``tests/data/strd/<name>.dat`` (linear or nonlinear)."""
     path = DATA_DIR / f"{name}.dat"
     text = path.read_text(encoding="ascii")
     lines = text.splitlines()
@@ -62,15 +83,23 @@ def load_strd(name: str) -> StrdDataset:
 
     params: dict[int, tuple[float, float]] = {}
     residual_sd: float | None = None
+    dof: int | None = None
     for line in lines[cert_first - 1 : cert_last]:  # header line numbers are 1-based, inclusive
-        if m := _PARAM.match(line):
+        if m := _PARAM.match(line) or _NONLINEAR_PARAM.match(line):
             params[int(m.group(1))] = (fortran_float(m.group(2)), fortran_float(m.group(3)))
-        elif m := _RESIDUAL_SD.match(line):
+        elif m := _RESIDUAL_SD.match(line) or _NONLINEAR_RESIDUAL_SD.match(line):
             residual_sd = fortran_float(m.group(1))
-    if not params or sorted(params) != list(range(len(params))):
-        raise ValueError(f"{path.name}: certified parameters B0..Bp not found in order")
+        elif m := _ANOVA_RESIDUAL.match(line) or _NONLINEAR_DOF.match(line):
+            dof = int(m.group(1))
+    first_index = min(params, default=-1)  # -1: no parameter found
+    if first_index not in (0, 1) or sorted(params) != list(
+        range(first_index, first_index + len(params))
+    ):
+        raise ValueError(f"{path.name}: certified parameters B0..Bp, B1..Bp or b1..bp not found")
     if residual_sd is None:
         raise ValueError(f"{path.name}: certified residual standard deviation not found")
+    if dof is None:
+        raise ValueError(f"{path.name}: certified residual degrees of freedom not found")
 
     rows = [
         [fortran_float(tok) for tok in line.split()] for line in lines[data_first - 1 : data_last]
@@ -88,5 +117,7 @@ def load_strd(name: str) -> StrdDataset:
         y=data[:, 0].copy(),
         estimates=tuple(params[k][0] for k in sorted(params)),
         std_devs=tuple(params[k][1] for k in sorted(params)),
+        first_index=first_index,
         residual_sd=residual_sd,
+        dof=dof,
     )

@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 
 from shared import FAMILIES, BadInput, Fit, SingularFit, TooFewPoints, fit
-from tests.shared.strd import DATA_DIR, StrdDataset, fortran_float
+from tests.shared.strd import DATA_DIR, load_strd
 from tests.shared.synthetic_power import (
     DISTANCES_MM,
     EXP_READINGS,
@@ -43,51 +43,7 @@ from tests.shared.synthetic_power import (
 NEW_FAMILIES = ("inverse", "power", "power_offset", "exp_rise")
 
 
-# -- NIST StRD nonlinear files ------------------------------------------------------------------
-# tests/shared/strd.py parses the linear files (B0..Bp); the nonlinear header differs: each
-# certified line reads "b<k> = start-1 start-2 estimate standard-deviation", and the residual
-# standard deviation is on a line "Residual Standard Deviation: <value>". The same header names
-# the line ranges of the certified block and of the data (columns y, x).
-_NUM = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[EeDd][-+]?\d+)?"
-_RANGE = re.compile(r"^\s*(Certified Values|Data)\s*\(lines\s+(\d+)\s+to\s+(\d+)\)", re.MULTILINE)
-_PARAM = re.compile(rf"^\s*b(\d+)\s*=\s*{_NUM}\s+{_NUM}\s+({_NUM})\s+({_NUM})\s*$")
-_RESIDUAL_SD = re.compile(rf"^\s*Residual Standard Deviation:\s*({_NUM})\s*$")
-_DOF = re.compile(r"^\s*Degrees of Freedom:\s*(\d+)\s*$", re.MULTILINE)
-
-
-def load_strd_nonlinear(name: str) -> tuple[StrdDataset, int]:
-    """Parse ``tests/data/strd/<name>.dat`` (nonlinear); estimates[0] belongs to b1. Also dof."""
-    text = (DATA_DIR / f"{name}.dat").read_text(encoding="ascii")
-    lines = text.splitlines()
-    ranges = {m.group(1): (int(m.group(2)), int(m.group(3))) for m in _RANGE.finditer(text)}
-    cert_first, cert_last = ranges["Certified Values"]
-    data_first, data_last = ranges["Data"]
-    params: dict[int, tuple[float, float]] = {}
-    residual_sd = None
-    for line in lines[cert_first - 1 : cert_last]:  # 1-based, inclusive
-        if m := _PARAM.match(line):
-            params[int(m.group(1))] = (fortran_float(m.group(2)), fortran_float(m.group(3)))
-        elif m := _RESIDUAL_SD.match(line):
-            residual_sd = fortran_float(m.group(1))
-    assert sorted(params) == list(range(1, len(params) + 1)), f"{name}: b1..bp not in order"
-    assert residual_sd is not None, f"{name}: no residual standard deviation"
-    dof = _DOF.search(text)
-    assert dof is not None, f"{name}: no degrees of freedom"
-    data = np.array(
-        [[fortran_float(t) for t in line.split()] for line in lines[data_first - 1 : data_last]]
-    )
-    assert data.ndim == 2 and data.shape[1] == 2, data.shape
-    dataset = StrdDataset(
-        name=name,
-        x=data[:, 1].copy(),
-        y=data[:, 0].copy(),
-        estimates=tuple(params[k][0] for k in sorted(params)),
-        std_devs=tuple(params[k][1] for k in sorted(params)),
-        residual_sd=residual_sd,
-    )
-    return dataset, int(dof.group(1))
-
-
+# -- NIST StRD nonlinear files (read by tests/shared/strd.py) -----------------------------------
 def test_strd_copies_match_the_sha256_listed_in_the_data_readme() -> None:
     readme = (DATA_DIR.parent / "README.md").read_text(encoding="utf-8")
     for name in ("Misra1a", "BoxBOD", "DanWood"):
@@ -108,11 +64,11 @@ def test_strd_copies_match_the_sha256_listed_in_the_data_readme() -> None:
 def test_nonlinear_loader_reads_data_and_certified_block(
     name: str, n: int, first: tuple[float, float], last: tuple[float, float]
 ) -> None:
-    ref, dof = load_strd_nonlinear(name)
+    ref = load_strd(name)
     assert ref.x.shape == ref.y.shape == (n,)
     assert (ref.y[0], ref.x[0]) == first and (ref.y[-1], ref.x[-1]) == last
-    assert len(ref.estimates) == len(ref.std_devs) == 2
-    assert dof == n - 2
+    assert ref.first_index == 1 and len(ref.estimates) == len(ref.std_devs) == 2  # b1, b2
+    assert ref.dof == n - 2
 
 
 REL = 1e-6  # at least 6 significant digits of every certified number
@@ -127,7 +83,7 @@ REL = 1e-6  # at least 6 significant digits of every certified number
     ],
 )
 def test_nonlinear_strd_matches_certified_values(name: str, family: str) -> None:
-    ref, dof = load_strd_nonlinear(name)
+    ref = load_strd(name)
     got = fit(family, ref.x, ref.y)  # our automatic start; no start values exist in the API
     assert got.param_names == ("a", "b")  # b1 -> a, b2 -> b
     # NIST StRD Misra1a / BoxBOD / DanWood: certified values of b1, b2
@@ -138,7 +94,7 @@ def test_nonlinear_strd_matches_certified_values(name: str, family: str) -> None
     assert got.stderr["b"] == pytest.approx(ref.std_devs[1], rel=REL)
     # NIST StRD Misra1a / BoxBOD / DanWood: certified residual standard deviation
     assert got.rse == pytest.approx(ref.residual_sd, rel=REL)
-    assert got.dof == dof  # NIST StRD: certified degrees of freedom
+    assert got.dof == ref.dof  # NIST StRD: certified degrees of freedom
     assert got.sigma_source == "residuals" and got.excluded == () and got.monotone
 
 

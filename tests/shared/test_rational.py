@@ -9,8 +9,6 @@ standard deviation of both problems. The requirement is 6; the tests ask for 8.
 from __future__ import annotations
 
 import json
-import re
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -18,60 +16,14 @@ import pytest
 
 from shared import BadInput, Fit, SingularFit, fit
 from shared.families.rational import FAMILY as RATIONAL
-from tests.shared.strd import DATA_DIR, fortran_float
+from tests.shared.strd import load_strd
 
 REL = 1e-8
 
 
-# -- NIST StRD nonlinear files ----------------------------------------------------------------
-# tests/shared/strd.py reads the linear files. In the nonlinear ones each certified line reads
-# "b<k> = start-1 start-2 estimate standard-deviation", and the residual standard deviation and
-# degrees of freedom have lines of their own; the header names the line ranges as before.
-_NUMBER = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[EeDd][-+]?\d+)?"
-_RANGE = re.compile(r"^\s*(Certified Values|Data)\s*\(lines\s+(\d+)\s+to\s+(\d+)\)", re.MULTILINE)
-_PARAM = re.compile(rf"^\s*b(\d+)\s*=\s*{_NUMBER}\s+{_NUMBER}\s+({_NUMBER})\s+({_NUMBER})\s*$")
-_RESIDUAL_SD = re.compile(rf"^\s*Residual Standard Deviation:\s*({_NUMBER})\s*$", re.MULTILINE)
-_DOF = re.compile(r"^\s*Degrees of Freedom:\s*(\d+)\s*$", re.MULTILINE)
-
-
-@dataclass(frozen=True)
-class Certified:
-    """One nonlinear StRD problem: data and certified results (``estimates[0]`` is b1)."""
-
-    x: np.ndarray
-    y: np.ndarray
-    estimates: tuple[float, ...]
-    std_devs: tuple[float, ...]
-    residual_sd: float
-    dof: int
-
-
-def load_nonlinear(name: str) -> Certified:
-    text = (DATA_DIR / f"{name}.dat").read_text(encoding="ascii")
-    lines = text.splitlines()
-    ranges = {m.group(1): (int(m.group(2)), int(m.group(3))) for m in _RANGE.finditer(text)}
-    first, last = ranges["Certified Values"]
-    params = {}
-    for line in lines[first - 1 : last]:  # header line numbers are 1-based, inclusive
-        if m := _PARAM.match(line):
-            params[int(m.group(1))] = (fortran_float(m.group(2)), fortran_float(m.group(3)))
-    assert sorted(params) == list(range(1, len(params) + 1)), f"{name}: b1..bp not in order"
-    rsd, dof = _RESIDUAL_SD.search(text), _DOF.search(text)
-    assert rsd is not None and dof is not None, name
-    first, last = ranges["Data"]
-    data = np.array([[fortran_float(t) for t in line.split()] for line in lines[first - 1 : last]])
-    return Certified(
-        x=data[:, 1],
-        y=data[:, 0],
-        estimates=tuple(params[k][0] for k in sorted(params)),
-        std_devs=tuple(params[k][1] for k in sorted(params)),
-        residual_sd=fortran_float(rsd.group(1)),
-        dof=int(dof.group(1)),
-    )
-
-
+# -- NIST StRD nonlinear files (read by tests/shared/strd.py) ---------------------------------
 def test_loader_reads_kirby2_and_hahn1() -> None:
-    kirby2, hahn1 = load_nonlinear("Kirby2"), load_nonlinear("Hahn1")
+    kirby2, hahn1 = load_strd("Kirby2"), load_strd("Hahn1")
     # NIST StRD Kirby2: 151 observations, 5 parameters; Hahn1: 236 observations, 7 parameters
     assert kirby2.x.shape == kirby2.y.shape == (151,) and len(kirby2.estimates) == 5
     assert hahn1.x.shape == hahn1.y.shape == (236,) and len(hahn1.estimates) == 7
@@ -92,7 +44,7 @@ def test_loader_reads_kirby2_and_hahn1() -> None:
 def test_nist_strd_certified_values(
     name: str, degree: tuple[int, int], names: tuple[str, ...]
 ) -> None:
-    ref = load_nonlinear(name)
+    ref = load_strd(name)
     got = fit("rational", ref.x, ref.y, degree=degree)
     assert got.param_names == names  # b1..bm+1 -> p0..pm, then the rest -> q1..qn
     for b, (param, estimate, sd) in enumerate(
@@ -202,7 +154,7 @@ def test_unknown_option_lists_the_allowed_one() -> None:
 
 # -- serialisation -----------------------------------------------------------------------------
 def test_json_round_trip_is_exact() -> None:
-    ref = load_nonlinear("Kirby2")
+    ref = load_strd("Kirby2")
     got = fit("rational", ref.x, ref.y, degree=[2, 2])
     back = Fit.from_dict(json.loads(json.dumps(got.to_dict())))
     assert back.options == got.options == {"degree": [2, 2]}

@@ -17,18 +17,16 @@ they leave at least three digits of margin below what the engine reaches.
 from __future__ import annotations
 
 import json
-import re
 from fractions import Fraction
 
 import numpy as np
 import pytest
 
 from shared import Fit, fit
-from tests.shared.strd import DATA_DIR, StrdDataset, fortran_float, load_strd
+from tests.shared.strd import StrdDataset, load_strd
 
 FILIP_REL = 1e-10  # reached: parameters ~13.5 digits, standard deviations ~14.5, RSD ~15
 WAMPLER_REL = 1e-12  # reached: the certified 1.0 exactly; standard deviations and RSD ~14.5
-_RANGE = re.compile(r"^\s*(Certified Values|Data)\s*\(lines\s+(\d+)\s+to\s+(\d+)\)", re.MULTILINE)
 
 
 def _check_certified(got: Fit, ref: StrdDataset, rel: float, name: str) -> None:
@@ -42,37 +40,17 @@ def _check_certified(got: Fit, ref: StrdDataset, rel: float, name: str) -> None:
 
 
 # -- NoInt1: y = B1*x ---------------------------------------------------------------------------
-def _load_noint1() -> tuple[np.ndarray, np.ndarray, float, float, float]:
-    """x, y and the certified B1, its standard deviation and the RSD of NoInt1.
-
-    ``load_strd`` wants B0..Bp; NoInt1 certifies B1 alone, so its few lines are read here (same
-    layout: the header names the line ranges; data rows are ``y x``).
-    """
-    text = (DATA_DIR / "NoInt1.dat").read_text(encoding="ascii")
-    lines = text.splitlines()
-    ranges = {m.group(1): (int(m.group(2)), int(m.group(3))) for m in _RANGE.finditer(text)}
-    first, last = ranges["Certified Values"]
-    b1 = sd = rsd = None
-    for line in lines[first - 1 : last]:
-        if m := re.match(r"^\s*B1\s+(\S+)\s+(\S+)\s*$", line):
-            b1, sd = fortran_float(m.group(1)), fortran_float(m.group(2))
-        elif m := re.match(r"^\s*Standard Deviation\s+(\S+)\s*$", line):
-            rsd = fortran_float(m.group(1))
-    assert b1 is not None and sd is not None and rsd is not None
-    first, last = ranges["Data"]
-    data = np.array([[fortran_float(t) for t in line.split()] for line in lines[first - 1 : last]])
-    assert data.shape == (11, 2)  # NIST StRD NoInt1: 11 observations
-    return data[:, 1], data[:, 0], b1, sd, rsd
-
-
 def test_noint1_line_through_zero_matches_certified_values() -> None:
-    x, y, b1, sd, rsd = _load_noint1()
-    got = fit("line", x, y, through_zero=True)
+    ref = load_strd("NoInt1")
+    assert ref.x.shape == (11,)  # NIST StRD NoInt1: 11 observations
+    assert ref.first_index == 1 and len(ref.estimates) == 1  # NoInt1 certifies B1 alone
+    b1, sd, rsd, dof = ref.estimates[0], ref.std_devs[0], ref.residual_sd, ref.dof
+    got = fit("line", ref.x, ref.y, through_zero=True)
     assert got.param_names == ("c1",)
     assert got.params["c1"] == pytest.approx(b1, rel=1e-12)  # NIST StRD NoInt1: certified B1
     assert got.stderr["c1"] == pytest.approx(sd, rel=1e-12)  # ... its standard deviation
     assert got.rse == pytest.approx(rsd, rel=1e-12)  # ... residual standard deviation
-    assert got.dof == 10  # NIST StRD NoInt1: residual degrees of freedom (ANOVA table)
+    assert got.dof == dof == 10  # NIST StRD NoInt1: residual degrees of freedom (ANOVA table)
 
 
 # -- Filip: degree 10 ---------------------------------------------------------------------------
