@@ -94,7 +94,8 @@ class Fit:
     ``rse`` is the residual standard error of the values, sqrt(sum(residual^2) / dof), value units;
     ``scale`` is sqrt(sum(weight * residual^2) / dof) in the space the family is fitted in, the
     factor the covariance was scaled by when ``sigma_source="residuals"`` (equal to ``rse`` for an
-    unweighted value-direction fit).
+    unweighted value-direction fit). Both are 0.0 when ``dof`` is 0, which only a family that
+    interpolates its points (``table``) allows, and only with given uncertainties.
     ``reading``, ``value`` are every input point; ``used`` marks those that entered the fit;
     ``weights`` are the final least-squares weights (0 for points not used); ``excluded`` gives
     (index, reason) for each point left out; ``residuals`` = value - f(reading) for every point
@@ -403,6 +404,12 @@ def fit(
     Families that can fold back (``inverse_offset``) also exclude, with a stated reason, the
     points beyond a detected turnover. Raises ``BadInput``/``TooFewPoints`` for unusable input and
     ``SingularFit`` when the points do not determine the parameters.
+
+    Two optional family hooks: ``bind_options(reading, value, options) -> dict`` completes the
+    options from the used points once the exclusions are known (a table's knots; whether
+    ``callendar_van_dusen`` fits C); the result is what ``Fit.options`` records. A family with
+    ``interpolates = True`` (``table``) may have as many parameters as used points (dof 0) when
+    u_value / u_reading are given; otherwise every family needs one point more than parameters.
     """
     fam = get_family(family)
     opts = fam.check_options(options)
@@ -434,8 +441,19 @@ def fit(
     used = np.ones(r.size, dtype=bool)
     used[list(excluded)] = False
 
+    bind = getattr(fam, "bind_options", None)
+    if bind is not None:  # options that depend on the used points (e.g. a table's knots)
+        opts = dict(bind(r[used], v[used], opts))
     names = fam.param_names(opts)
-    if used.sum() < len(names) + 1:
+    interpolates = bool(getattr(fam, "interpolates", False))
+    needed = max(len(names), 2) if interpolates and source == "given" else len(names) + 1
+    if used.sum() < needed:
+        if interpolates and used.sum() >= max(len(names), 2):
+            raise TooFewPoints(
+                f"{family} passes through its points: {int(used.sum())} points without repeated "
+                f"readings give {len(names)} parameters and no residual to estimate the "
+                "uncertainty from; repeat some readings, or state u_value / u_reading"
+            )
         raise TooFewPoints(
             f"{family} has {len(names)} parameters and needs at least "
             f"{len(names) + 1} usable points; got {int(used.sum())}"
@@ -451,8 +469,8 @@ def fit(
     else:
         fit_space = resid_all[used]
     dof = int(used.sum()) - len(names)
-    scale = float(np.sqrt(np.sum(wu * fit_space**2) / dof))
-    rse = float(np.sqrt(np.sum(resid_all[used] ** 2) / dof))
+    scale = float(np.sqrt(np.sum(wu * fit_space**2) / dof)) if dof else 0.0
+    rse = float(np.sqrt(np.sum(resid_all[used] ** 2) / dof)) if dof else 0.0
     if source == "residuals":
         cov = sol.cov_unscaled * scale**2
         noise_v, noise_r = (scale, 0.0) if noise == "value" else (0.0, scale)

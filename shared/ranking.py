@@ -135,6 +135,7 @@ def rank(
         except CalibrationError as exc:
             failed.append(Candidate(name, opts, None, n_params, error=str(exc)))
             continue
+        n_params = len(result.params)  # after the family bound its options to the data
         rss = result.scale**2 * result.dof
         aic, aicc, bic = information_criteria(rss, result.n_used, n_params)
         scored.append(Candidate(name, opts, result, n_params, rss, aic, aicc, bic))
