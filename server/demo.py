@@ -19,7 +19,14 @@ Sensor types (three boxes of rangefinders, two of potentiometers, two of load ce
   the mean of 16 ADC samples (sample noise 3 counts), rounded to a count.
 - Rotary pot 300 deg: counts -> degrees, a straight line plus a small invented bow of the track.
 - Load cell 200 N: mV/V -> N against dead weights loaded up then down (repeats at every level),
-  with a small invented quadratic non-linearity, fitted with a degree-2 polynomial.
+  with a small invented quadratic non-linearity; the type lists a degree-2 polynomial and a line,
+  both are fitted and ranked, and the ranking recommends the polynomial for every unit.
+
+In all three the scatter is in the reading (ADC or bridge noise; the jig, the indexing head and
+the dead weights are far finer), so each type has ``noise_in="reading"`` and a reading resolution
+(one count; the load cell's logged digit, 0.00001 mV/V). Every session records its reference
+standard's expanded uncertainty (k = 2, from invented certificates): it enters the uncertainty
+budget and the test-uncertainty ratio.
 
 Units later features must find (also in ``DemoSummary``):
 
@@ -57,7 +64,7 @@ from server.calibrations.schemas import CalibrationCreate, PointIn
 from server.calibrations.service import run_calibration
 from server.errors import Conflict
 from server.fleet import service as fleet
-from server.fleet.models import SensorType, Unit, UnitStatus
+from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeCreate, UnitCreate
 
 SEED = 20261120
@@ -115,11 +122,14 @@ RANGEFINDER = SensorTypeCreate(
     tolerance_rel=2.0,
     drift_limit_abs=8.0,
     interval_days=180,
+    noise_in=NoiseIn.reading,  # the scatter is the ADC's: averaged samples, rounded to a count
+    reading_resolution=1.0,  # counts
 )
 BELOW_MIN_RANGE_MM = (40, 50, 60)  # where the response folds back: excluded by the engine
 IN_RANGE_MM = (80, 90, 100, 120, 150, 200, 250, 300, 350, 400, 450, 500, 600, 700, 800)
 RANGEFINDER_JIG = BELOW_MIN_RANGE_MM + IN_RANGE_MM
 RANGEFINDER_REFERENCE = "distance jig DJ-1 (rail with stops, +-0.2 mm), white card target"
+RANGEFINDER_REFERENCE_U = 0.2  # mm, k = 2: the jig's stops (invented certificate)
 SAMPLES_PER_READING = 16
 
 
@@ -163,9 +173,12 @@ POTENTIOMETER = SensorTypeCreate(
     tolerance_abs=1.0,
     drift_limit_abs=0.5,
     interval_days=365,
+    noise_in=NoiseIn.reading,  # wiper and ADC noise, in counts; the indexing head is far finer
+    reading_resolution=1.0,  # counts
 )
 POT_JIG = tuple(range(0, 271, 15))  # deg on the indexing head
 POT_REFERENCE = "indexing head IH-2 with vernier (0.1 deg)"
+POT_REFERENCE_U = 0.1  # deg, k = 2 (invented certificate)
 
 
 def _pot_truth(z: Scores) -> Truth:
@@ -198,16 +211,19 @@ LOAD_CELL = SensorTypeCreate(
     reading_unit="mV/V",
     reading_min=0,
     reading_max=2.2,
-    families=["polynomial"],
+    families=["polynomial", "line"],  # both ranked; the non-linearity makes the line lose
     family_options={"polynomial": {"degree": 2}},
     tolerance_abs=0.2,
     tolerance_rel=0.5,
     drift_limit_abs=0.6,
     interval_days=365,
+    noise_in=NoiseIn.reading,  # bridge amplifier noise; class M1 weights are far finer
+    reading_resolution=0.00001,  # mV/V, the logged digit
 )
 LOAD_KG = (0, 2, 4, 6, 8, 10, 12, 14, 16, 18, 20)
 LOAD_CELL_JIG = tuple(round(kg * GRAVITY, 5) for kg in (*LOAD_KG, *reversed(LOAD_KG)))  # up, down
 LOAD_CELL_REFERENCE = "dead-weight set DW-20 (class M1), 2 kg steps, hanger tared"
+LOAD_CELL_REFERENCE_U = 0.01  # N, k = 2: about 1 g at 20 kg (invented certificate)
 FULL_SCALE_N = 20 * GRAVITY
 
 
@@ -242,6 +258,7 @@ class Kind:
     prefix: str
     jig: tuple[float, ...]
     reference: str
+    reference_u: float  # expanded uncertainty (k = 2) of the reference, value units
     spread: tuple[str, ...]  # the constants that vary unit to unit
     truth: Callable[[Scores], Truth]
     respond: Callable[[Truth, np.ndarray, np.random.Generator], np.ndarray]
@@ -255,6 +272,7 @@ KINDS = {
         prefix="IR",
         jig=RANGEFINDER_JIG,
         reference=RANGEFINDER_REFERENCE,
+        reference_u=RANGEFINDER_REFERENCE_U,
         spread=("k", "r0", "v0", "knee"),
         truth=_rangefinder_truth,
         respond=_rangefinder_respond,
@@ -266,6 +284,7 @@ KINDS = {
         prefix="POT",
         jig=POT_JIG,
         reference=POT_REFERENCE,
+        reference_u=POT_REFERENCE_U,
         spread=("travel", "offset", "bow"),
         truth=_pot_truth,
         respond=_pot_respond,
@@ -277,6 +296,7 @@ KINDS = {
         prefix="LC",
         jig=LOAD_CELL_JIG,
         reference=LOAD_CELL_REFERENCE,
+        reference_u=LOAD_CELL_REFERENCE_U,
         spread=("sensitivity", "zero", "nonlinearity"),
         truth=_load_cell_truth,
         respond=_load_cell_respond,
@@ -412,6 +432,8 @@ def _calibrate(
             performed_at=_at(day, 25 * position),
             operator=OPERATORS[int(rng.integers(0, len(OPERATORS)))],
             reference=kind.reference,
+            reference_expanded_u=kind.reference_u,
+            reference_k=2.0,
             kind=SessionKind.incoming if n == 0 else SessionKind.periodic,
             ambient=_ambient(rng),
             points=[

@@ -31,6 +31,19 @@ def uncertainty(u: float | None) -> str:
     return f"{round(u, 1 - exponent):.{max(0, 1 - exponent)}f}"
 
 
+def rounded_like(x: float | None, u: float | None) -> str:
+    """``x`` to the decimal place of ``u`` shown to two significant digits (a value beside its
+    uncertainty, GUM 7.2.6); ``measured`` when ``u`` is no use."""
+    if x is None or not math.isfinite(x):
+        return DASH
+    if u is None or not math.isfinite(u) or u <= 0:
+        return measured(x)
+    exponent = math.floor(math.log10(abs(u)))
+    if exponent < -6 or exponent > 8:
+        return measured(x)
+    return f"{x:.{max(0, 1 - exponent)}f}"
+
+
 def measured(x: float | None, digits: int = 4) -> str:
     """A measured value to ``digits`` significant digits, for reading at a glance."""
     if x is None or not math.isfinite(x):
@@ -67,6 +80,7 @@ FILTERS = {
     "sig": significant,
     "unc": uncertainty,
     "num": measured,
+    "like_u": rounded_like,
     "utc": utc_minute,
     "day": day,
     "label": label,

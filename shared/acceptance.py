@@ -2,9 +2,19 @@
 
 Decision rule (common practice, no single source; stated in every decision):
 the allowed error at a point is ``tolerance_abs + tolerance_rel/100 * |value|`` (either part may be
-absent). The unit passes when (1) every used point's residual is within the allowed error, and
-(2) the expanded uncertainty (k = 2) of the fitted curve at every used point is at most the allowed
-error divided by the test-uncertainty ratio (TUR, 4:1 by default).
+absent). The unit passes when
+
+1. every used point's residual is within the allowed error;
+2. the expanded uncertainty U (k = 2) at every used point is at most the allowed error divided by
+   the test-uncertainty ratio (TUR, 4:1 by default). U = 2 sqrt(u_curve^2 + u_ref^2 + u_res^2):
+   the fitted curve's standard uncertainty (law of propagation through the covariance), and, when
+   the session states them (``type_b``), the reference standard's U/k (value units) and one
+   reading step as a rectangular distribution, step/sqrt(12), times |d value / d reading| at the
+   point (GUM 4.3.7). Without type B inputs U is the fitted curve's alone. A stated extra term
+   (``TypeB.extra_u``) belongs to the uncertainty budget of a converted value
+   (``shared.budget``), not to this check;
+3. the fitted curve is monotone over its valid range (``Fit.monotone``): where it is not, one
+   reading stands for two values and the curve cannot go into an instrument.
 """
 
 from __future__ import annotations
@@ -13,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from shared.budget import TypeB
 from shared.errors import BadInput
 from shared.fitting import Fit
 from shared.uncertainty import K_CONVENTION
@@ -30,7 +41,7 @@ class Decision:
     worst_error: float  # largest |residual| among used points
     worst_error_at: float  # reference value where it occurs
     allowed_at_worst: float  # allowed error at that point
-    max_expanded_uncertainty: float  # largest k = 2 curve uncertainty among used points
+    max_expanded_uncertainty: float  # largest U (k = 2) judged for the TUR among used points
     tur_required: float
     tur_achieved: float  # smallest allowed / U over used points
 
@@ -67,27 +78,65 @@ def decide(
     *,
     tur: float = DEFAULT_TUR,
     unit: str = "",
+    type_b: TypeB | None = None,
+    reading_unit: str = "",
 ) -> Decision:
-    """Judge ``result`` against the tolerance; see the module docstring for the rule."""
+    """Judge ``result`` against the tolerance; see the module docstring for the rule.
+
+    ``type_b``: the session's reference standard (``reference_expanded``, ``reference_k``, value
+    units) and the reading resolution (``resolution``, reading units) enter the U judged for the
+    TUR. ``unit`` and ``reading_unit`` only word the rule and the reasons.
+    """
     if not (tolerance_abs or tolerance_rel):
         raise BadInput("a tolerance is needed: give tolerance_abs and/or tolerance_rel")
     if (tolerance_abs or 0) < 0 or (tolerance_rel or 0) < 0 or tur <= 0:
         raise BadInput("tolerances and the TUR must be positive")
+    inputs = type_b or TypeB()
+    if inputs.reference_expanded is not None and inputs.reference_expanded < 0:
+        raise BadInput("the reference standard's expanded uncertainty must not be negative")
+    if inputs.reference_expanded and inputs.reference_k <= 0:
+        raise BadInput("the reference standard's coverage factor k must be positive")
+    if inputs.resolution is not None and inputs.resolution < 0:
+        raise BadInput("the reading resolution must not be negative")
+    sp = " " if unit else ""
+    u_ref = inputs.reference_expanded / inputs.reference_k if inputs.reference_expanded else 0.0
+    terms = ["the fitted curve"]
+    if u_ref:
+        terms.append(
+            f"the reference standard (U = {inputs.reference_expanded:g}{sp}{unit}, "
+            f"k = {inputs.reference_k:g})"
+        )
+    if inputs.resolution:
+        step = f"{inputs.resolution:g} {reading_unit}".rstrip()
+        terms.append(f"the reading resolution (one step = {step}, rectangular)")
     tol_text = describe_tolerance(tolerance_abs, tolerance_rel, unit)
+    if len(terms) == 1:
+        of_what = f"the expanded uncertainty of the fitted curve (k = {K_CONVENTION:g})"
+    else:
+        of_what = (
+            f"the expanded uncertainty (k = {K_CONVENTION:g}) of {', '.join(terms[:-1])} and "
+            f"{terms[-1]} combined"
+        )
     rule = (
-        f"Pass when every residual is within {tol_text} and the expanded uncertainty of the "
-        f"fitted curve (k = {K_CONVENTION:g}) is at most 1/{tur:g} of that tolerance at every "
-        f"point (test-uncertainty ratio {tur:g}:1, common practice)."
+        f"Pass when every residual is within {tol_text}, {of_what} is at most 1/{tur:g} of that "
+        f"tolerance at every point (test-uncertainty ratio {tur:g}:1, common practice), and the "
+        f"fitted curve is monotone over its valid range."
     )
     used = result.used
     value = result.value[used]
+    reading = result.reading[used]
     error = np.abs(result.residuals[used])
     allowed = (tolerance_abs or 0.0) + (tolerance_rel or 0.0) / 100.0 * np.abs(value)
-    big_u = K_CONVENTION * result.curve_band(result.reading[used], level=None).u
+    u_curve = result.curve_band(reading, level=None).u
+    u_res = (
+        inputs.resolution / np.sqrt(12.0) * np.abs(result.slope(reading))
+        if inputs.resolution
+        else np.zeros_like(u_curve)
+    )
+    big_u = K_CONVENTION * np.sqrt(u_curve**2 + u_ref**2 + u_res**2)
     worst = int(np.argmax(error - allowed))
     ratio = np.divide(allowed, big_u, out=np.full_like(allowed, np.inf), where=big_u > 0)
     reasons = []
-    sp = " " if unit else ""
     n_out = int(np.sum(error > allowed))
     if n_out:
         reasons.append(
@@ -96,6 +145,12 @@ def decide(
         )
     if ratio.min() < tur:
         reasons.append(f"test-uncertainty ratio {ratio.min():.3g}:1 is below {tur:g}:1")
+    if not result.monotone:
+        lo, hi = result.valid_range
+        reasons.append(
+            f"the fitted curve is not monotone over its valid range (readings {lo:.6g} to "
+            f"{hi:.6g}): one reading there stands for two values"
+        )
     return Decision(
         passed=not reasons,
         rule=rule,

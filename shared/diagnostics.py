@@ -12,9 +12,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from shared.errors import CalibrationError
 from shared.families import get_family
 from shared.families.base import Array
-from shared.fitting import Fit, direction_of, slope_of
+from shared.fitting import Fit, direction_of, fit, slope_of
 
 SUSPECT_ALPHA = 0.05
 
@@ -58,9 +59,41 @@ def studentized_residuals(result: Fit) -> Array:
     if result.dof < 2:
         return out
     s2_del = (sse - w * resid**2 / (1.0 - h)) / (result.dof - 1)
+    # The deletion formula is exact for a linear least-squares problem. For a non-linear or
+    # effective-variance fit it is a linearisation, which a gross outlier can break (its share of
+    # SSE then exceeds SSE itself); there s_(i)^2 is taken from an actual refit without point i,
+    # with the weights held at their values in the full fit.
+    used_index = np.flatnonzero(result.used)
+    for j in np.flatnonzero(~(s2_del > 0)):
+        s2_del[j] = _deleted_scale_squared(result, int(used_index[j]))
     t = resid * np.sqrt(w) / np.sqrt(np.maximum(s2_del, 1e-300) * (1.0 - h))
     out[result.used] = t
     return out
+
+
+def _deleted_scale_squared(result: Fit, index: int) -> float:
+    """s_(i)^2: the weighted residual variance of a refit without point ``index`` (fixed weights).
+
+    Returns NaN when that refit cannot be made; the point's studentised residual is then NaN and
+    it is not flagged.
+    """
+    keep = np.asarray(result.used, dtype=bool).copy()
+    keep[index] = False
+    u = 1.0 / np.sqrt(np.where(keep, result.weights, 1.0))
+    natural = direction_of(get_family(result.family)) == "reading_from_value"
+    try:
+        refit = fit(
+            result.family,
+            result.reading,
+            result.value,
+            u_value=None if natural else u,
+            u_reading=u if natural else None,
+            exclude={int(i): "deleted" for i in np.flatnonzero(~keep)},
+            **result.options,
+        )
+    except CalibrationError:
+        return float("nan")
+    return float(refit.scale**2)
 
 
 @dataclass(frozen=True, slots=True)

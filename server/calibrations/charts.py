@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -20,6 +20,7 @@ POINT = "#1d2433"
 EXCLUDED = "#c2410c"
 EARLIER = "#8a94a6"
 TOLERANCE = "#b42318"
+SUSPECT = "#b45309"
 UNCERTAINTY = "rgba(61, 90, 254, 0.14)"
 FONT = "system-ui, -apple-system, 'Segoe UI', Roboto, 'Helvetica Neue', Arial, sans-serif"
 
@@ -177,10 +178,17 @@ def allowed_error(value: Any, tolerance_abs: float | None, tolerance_rel: float 
 
 
 def residual_figure(
-    fit: shared.Fit, axes: Axes, *, tolerance_abs: float | None, tolerance_rel: float | None
+    fit: shared.Fit,
+    axes: Axes,
+    *,
+    tolerance_abs: float | None,
+    tolerance_rel: float | None,
+    suspects: Mapping[int, str] | None = None,
 ) -> go.Figure:
     """Residuals (reference − fitted) against the reference value, with the tolerance lines
-    ±(tolerance_abs + tolerance_rel % of value) and the curve's expanded uncertainty (k = 2)."""
+    ±(tolerance_abs + tolerance_rel % of value) and the curve's expanded uncertainty (k = 2).
+    ``suspects`` (point index -> reason) are ringed and numbered as in the points table (from 1),
+    with the reason on hover."""
     fig = go.Figure()
     vu = axes.value_unit
     used, excluded = _points(fit)
@@ -258,6 +266,28 @@ def residual_figure(
             name="outside tolerance",
             hoverinfo="skip",
             marker={"color": "rgba(0,0,0,0)", "size": 16, "line": {"color": TOLERANCE, "width": 2}},
+        )
+    flagged = sorted(i for i in (suspects or {}) if 0 <= i < fit.used.size and fit.used[i])
+    if flagged and suspects:
+        fig.add_scatter(
+            x=fit.value[flagged],
+            y=fit.residuals[flagged],
+            mode="markers+text",
+            name="suspect point (still used)",
+            text=[f"#{i + 1}" for i in flagged],
+            textposition="top center",
+            textfont={"color": SUSPECT, "size": 12},
+            customdata=[suspects[i] for i in flagged],
+            marker={
+                "color": SUSPECT,
+                "size": 22,
+                "symbol": "diamond-open",
+                "line": {"color": SUSPECT, "width": 2.5},
+            },
+            hovertemplate=(
+                f"point %{{text}}: reference %{{x:.5~g}} {vu}<br>residual %{{y:.3~g}} {vu}"
+                "<br>suspect: %{customdata}<extra>suspect</extra>"
+            ),
         )
     span = (
         max(float(allowed.max()), float(np.abs(fit.residuals[used]).max()), float(big_u.max()))

@@ -30,6 +30,12 @@ class CalibrationSession(Base):
     performed_at: Mapped[datetime] = mapped_column(UTCDateTime)
     operator: Mapped[str] = mapped_column(String(64))
     reference: Mapped[str] = mapped_column(String(128))
+    # type B inputs of the session, value units: the reference standard's expanded uncertainty
+    # U with its coverage factor k, and one stated extra standard uncertainty with its label
+    reference_expanded_u: Mapped[float | None] = mapped_column(Float)
+    reference_k: Mapped[float] = mapped_column(Float, default=2.0, server_default="2")
+    extra_u: Mapped[float | None] = mapped_column(Float)
+    extra_label: Mapped[str | None] = mapped_column(String(128))
     kind: Mapped[SessionKind] = mapped_column(
         Enum(SessionKind, native_enum=False, length=16, validate_strings=True)
     )
@@ -79,6 +85,11 @@ class FitRecord(Base):
     options: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
     result: Mapped[dict[str, Any]] = mapped_column(JSON)  # shared.Fit.to_dict()
     decision: Mapped[dict[str, Any]] = mapped_column(JSON)  # shared.Decision.to_dict()
+    # shared.ranking.Ranking.to_dict() of the type's families on the same points, plus which one
+    # was kept and why ("chosen", "chosen_because"); None for fits stored before revision 0002
+    ranking: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    # {"suspects": [{index, t, reason}], "lack_of_fit": {...} | None}; None before revision 0002
+    diagnostics: Mapped[dict[str, Any] | None] = mapped_column(JSON)
     passed: Mapped[bool] = mapped_column(Boolean)
     is_current: Mapped[bool] = mapped_column(Boolean, default=True)
     engine_version: Mapped[str] = mapped_column(String(32))

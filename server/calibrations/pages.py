@@ -20,7 +20,7 @@ from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
 from server.db import SessionDep
 from server.errors import Invalid
-from server.fleet.models import Unit
+from server.fleet.models import SensorType, Unit
 from server.fleet.pages import unit_url
 from server.fleet.service import due_on, get_unit
 from server.htmx import is_partial, render
@@ -31,6 +31,17 @@ EARLIER_SHOWN = 5  # earlier calibrations overlaid on the curve plot
 SEPARATORS = re.compile(r"[,;\t ]+")
 HEADER = re.compile(r"[A-Za-z]{2,}")  # words, not an exponent such as 1e3
 DATETIME_LOCAL = "%Y-%m-%dT%H:%M"
+FIELD_LABELS = {  # the form's words for the API's field names, in error messages
+    "reference_expanded_u": "reference U",
+    "reference_k": "coverage factor k",
+    "extra_u": "extra standard uncertainty",
+    "extra_label": "what the extra uncertainty is",
+}
+CHOSEN_BECAUSE = {
+    "requested": "picked when the calibration was saved",
+    "recommended": "the ranking's recommendation",
+    "fallback": "nothing was recommended, so the type's first family that could be fitted",
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -45,20 +56,47 @@ class CalibrationForm:
     ambient: str = ""
     notes: str = ""
     points: str = ""
+    reference_expanded_u: str = ""
+    reference_k: str = "2"
+    extra_u: str = ""
+    extra_label: str = ""
     error: str | None = None
     error_field: str | None = None
 
 
 def blank_form(unit: Unit, user: User) -> CalibrationForm:
-    """Now (UTC), the signed-in user, and the reference used last time on this unit."""
+    """Now (UTC), the signed-in user, and the reference (with its U and k) used last time on this
+    unit; the family left to the ranking."""
     last = max(unit.sessions, key=lambda s: (s.performed_at, s.id), default=None)
     return CalibrationForm(
         performed_at=datetime.now(UTC).strftime(DATETIME_LOCAL),
         operator=user.name,
         reference=last.reference if last else "",
         kind=(SessionKind.periodic if unit.sessions else SessionKind.incoming).value,
-        family=unit.sensor_type.families[0],
+        family="",
+        reference_expanded_u=_number_text(last.reference_expanded_u) if last else "",
+        reference_k=_number_text(last.reference_k) if last else "2",
     )
+
+
+def _number_text(x: float | None) -> str:
+    return "" if x is None else f"{x:g}"
+
+
+def _optional_number(text: str, field: str, what: str) -> float | None:
+    """A typed number, or None for a blank field; Invalid naming the field otherwise."""
+    stripped = text.strip()
+    if not stripped:
+        return None
+    try:
+        number = float(stripped)
+    except ValueError:
+        raise Invalid(
+            f"{what}: “{stripped}” is not a number (use a point as the decimal mark)", field=field
+        ) from None
+    if not math.isfinite(number):
+        raise Invalid(f"{what}: “{stripped}” is not a finite number", field=field)
+    return number
 
 
 def parse_points(text: str) -> list[PointIn]:
@@ -137,6 +175,11 @@ def calibration_from_form(form: CalibrationForm) -> CalibrationCreate:
         raise Invalid("name the reference instrument or jig used", field="reference")
     if form.kind not in SessionKind.__members__:
         raise Invalid(f"unknown kind {form.kind!r}", field="kind")
+    reference_expanded_u = _optional_number(
+        form.reference_expanded_u, "reference_expanded_u", "reference U"
+    )
+    reference_k = _optional_number(form.reference_k, "reference_k", "coverage factor k")
+    extra_u = _optional_number(form.extra_u, "extra_u", "extra standard uncertainty")
     points = parse_points(form.points)
     try:
         return CalibrationCreate(
@@ -147,18 +190,32 @@ def calibration_from_form(form: CalibrationForm) -> CalibrationCreate:
             family=form.family or None,
             ambient=form.ambient.strip() or None,
             notes=form.notes.strip() or None,
+            reference_expanded_u=reference_expanded_u,
+            reference_k=2.0 if reference_k is None else reference_k,
+            extra_u=extra_u,
+            extra_label=form.extra_label.strip() or None,
             points=points,
         )
     except ValidationError as exc:
         first = exc.errors()[0]
         field = ".".join(str(p) for p in first["loc"])
-        raise Invalid(f"{field}: {first['msg']}", field=field.split(".")[0]) from None
+        message = str(first["msg"]).removeprefix("Value error, ")
+        raise Invalid(
+            f"{FIELD_LABELS.get(field, field)}: {message}", field=field.split(".")[0]
+        ) from None
 
 
 def unit_context(
-    unit: Unit, user: User, form: CalibrationForm, saved: int | None = None
+    unit: Unit,
+    user: User,
+    form: CalibrationForm,
+    saved: int | None = None,
+    reading: str | None = None,
 ) -> dict[str, Any]:
-    """Everything units/page.html shows: constants, figures, history and the form."""
+    """Everything units/page.html shows: constants, figures, checks, budget, history, the form.
+
+    ``reading`` is the text typed into the budget form (None: the middle of the valid range).
+    """
     sensor_type = unit.sensor_type
     axes = charts.Axes(sensor_type.quantity, sensor_type.value_unit, sensor_type.reading_unit)
     current = latest_session(unit.sessions)
@@ -182,6 +239,14 @@ def unit_context(
         "curve_json": None,
         "residual_json": None,
         "points": [],
+        "ranking": None,
+        "model_rows": [],
+        "chosen_because": None,
+        "suspects": [],
+        "lack_of_fit": None,
+        "budget": None,
+        "budget_error": None,
+        "budget_reading": (reading or "").strip(),
     }
     history = []
     for record in sorted(unit.sessions, key=lambda s: (s.performed_at, s.id), reverse=True):
@@ -211,6 +276,9 @@ def unit_context(
     ][:EARLIER_SHOWN]
     reasons = dict(fit.excluded)
     stderr = fit.stderr
+    diagnostics = service.stored_diagnostics(fit, stored)
+    suspects = {int(s["index"]): str(s["reason"]) for s in diagnostics["suspects"]}
+    ranking = stored.ranking
     ctx.update(
         fit=fit,
         decision=decision,
@@ -224,6 +292,7 @@ def unit_context(
             axes,
             tolerance_abs=sensor_type.tolerance_abs,
             tolerance_rel=sensor_type.tolerance_rel,
+            suspects=suspects,
         ).to_json(),
         points=[
             {
@@ -237,12 +306,41 @@ def unit_context(
                     p.reference_value, sensor_type.tolerance_abs, sensor_type.tolerance_rel
                 ),
                 "reason": reasons.get(i),
+                "suspect": suspects.get(i),
             }
             for i, p in enumerate(current.points)
         ],
         residual_format=f"%.{residual_decimals(fit.rse)}f",
+        suspects=sorted(suspects.items()),
+        lack_of_fit=diagnostics["lack_of_fit"],
+        ranking=ranking,
+        model_rows=model_rows(ranking) if ranking else [],
+        chosen_because=CHOSEN_BECAUSE.get(ranking["chosen_because"]) if ranking else None,
     )
+    try:
+        ctx["budget"] = service.budget_of(current, fit, _budget_reading(reading, sensor_type))
+    except Invalid as exc:
+        ctx["budget_error"] = exc.message
     return ctx
+
+
+def model_rows(ranking: dict[str, Any]) -> list[dict[str, Any]]:
+    """The stored ranking's candidates, with which one is recommended and which is in use."""
+    return [
+        {
+            **c,
+            "recommended": c["label"] == ranking["recommended"],
+            "in_use": c["label"] == ranking.get("chosen"),
+        }
+        for c in ranking["candidates"]
+    ]
+
+
+def _budget_reading(text: str | None, sensor_type: SensorType) -> float | None:
+    """The reading typed into the budget form; None (the middle of the range) when blank."""
+    if text is None or not text.strip():
+        return None
+    return _optional_number(text, "reading", f"reading ({sensor_type.reading_unit})")
 
 
 def residual_decimals(rse: float) -> int:
@@ -254,15 +352,24 @@ def residual_decimals(rse: float) -> int:
 
 @router.get("/units/{serial}")
 def unit_page(
-    request: Request, serial: str, session: SessionDep, user: PageViewer, saved: int | None = None
+    request: Request,
+    serial: str,
+    session: SessionDep,
+    user: PageViewer,
+    saved: int | None = None,
+    reading: str | None = None,
 ) -> HTMLResponse:
-    """One unit: the constants to use, its curve and residuals, history, and the form."""
+    """One unit: the constants to use, its curve and residuals, checks, uncertainty budget (at
+    ``reading``, else mid-range), history, and the form. htmx asking with ``reading`` gets the
+    budget block alone; a reading that cannot be used answers 422 with the reason."""
     unit = get_unit(session, serial)
+    ctx = unit_context(unit, user, blank_form(unit, user), saved, reading)
     return render(
         request,
         "units/page.html",
-        block="unit",
-        **unit_context(unit, user, blank_form(unit, user), saved),
+        block="budget" if reading is not None else "unit",
+        status_code=422 if ctx["budget_error"] else 200,
+        **ctx,
     )
 
 
@@ -280,6 +387,10 @@ def add_calibration(
     ambient: Annotated[str, Form()] = "",
     notes: Annotated[str, Form()] = "",
     points: Annotated[str, Form()] = "",
+    reference_expanded_u: Annotated[str, Form()] = "",
+    reference_k: Annotated[str, Form()] = "",
+    extra_u: Annotated[str, Form()] = "",
+    extra_label: Annotated[str, Form()] = "",
 ) -> Response:
     """Store a calibration typed into the unit page; a form to fix (422) when it cannot be."""
     unit = get_unit(session, serial)
@@ -292,6 +403,10 @@ def add_calibration(
         ambient=ambient,
         notes=notes,
         points=points,
+        reference_expanded_u=reference_expanded_u,
+        reference_k=reference_k,
+        extra_u=extra_u,
+        extra_label=extra_label,
     )
     try:
         record = service.run_calibration(

@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Annotated
 
-from fastapi import APIRouter, File, Form, UploadFile
+from fastapi import APIRouter, File, Form, Query, UploadFile
 from pydantic import ValidationError
 
 from server.accounts.deps import ApiTechnician, ApiViewer
@@ -49,6 +49,14 @@ def create_calibration_from_csv(
     family: Annotated[str | None, Form()] = None,
     ambient: Annotated[str | None, Form()] = None,
     notes: Annotated[str | None, Form()] = None,
+    reference_expanded_u: Annotated[
+        float | None, Form(description="U of the reference standard, value units")
+    ] = None,
+    reference_k: Annotated[float, Form(description="coverage factor of that U")] = 2.0,
+    extra_u: Annotated[
+        float | None, Form(description="one more standard uncertainty, value units")
+    ] = None,
+    extra_label: Annotated[str | None, Form(description="what extra_u is")] = None,
 ) -> CalibrationRead:
     """The same as posting JSON, with the points in an uploaded CSV file."""
     points = parse_points_csv(file.file.read(MAX_BYTES + 1))
@@ -61,17 +69,32 @@ def create_calibration_from_csv(
             family=family or None,
             ambient=ambient,
             notes=notes,
+            reference_expanded_u=reference_expanded_u,
+            reference_k=reference_k,
+            extra_u=extra_u,
+            extra_label=extra_label,
             points=points,
         )
     except ValidationError as exc:
         first = exc.errors()[0]
-        raise Invalid(f"{first['msg']}", field=".".join(str(p) for p in first["loc"])) from exc
+        field = ".".join(str(p) for p in first["loc"])
+        raise Invalid(f"{field}: {first['msg']}", field=field) from exc
     return create_calibration(serial, data, session, user)
 
 
 @router.get("/units/{serial}/calibration")
 def current_calibration(
-    serial: str, session: SessionDep, user: ApiViewer
+    serial: str,
+    session: SessionDep,
+    user: ApiViewer,
+    reading: Annotated[
+        float | None,
+        Query(
+            allow_inf_nan=False,
+            description="reading (reading units, inside the valid range) at which to state the "
+            "uncertainty budget; default: the middle of the valid range",
+        ),
+    ] = None,
 ) -> CurrentCalibrationRead:
-    """The unit's current calibration: fit, decision and due date."""
-    return service.current_calibration(get_unit(session, serial))
+    """The unit's current calibration: fit, decision, ranking, diagnostics, budget, due date."""
+    return service.current_calibration(get_unit(session, serial), reading)

@@ -3,9 +3,17 @@
 from __future__ import annotations
 
 from datetime import date, datetime
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StringConstraints
+from pydantic import (
+    AwareDatetime,
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    ValidationInfo,
+    field_validator,
+)
 
 from server.calibrations.models import SessionKind
 
@@ -31,10 +39,47 @@ class CalibrationCreate(BaseModel):
     operator: Text64
     reference: Text128 = Field(description="the reference instrument or jig used")
     kind: SessionKind = SessionKind.periodic
-    family: str | None = Field(None, description="one of the type's families; default: its first")
+    family: str | None = Field(
+        None,
+        description="one of the type's families; default: the one the ranking recommends "
+        "(every family of the type is fitted and ranked by AICc)",
+    )
     ambient: str | None = Field(None, max_length=128, description="e.g. 22 degC, 45 %RH")
     notes: str | None = Field(None, max_length=2000)
+    reference_expanded_u: float | None = Field(
+        None,
+        gt=0,
+        allow_inf_nan=False,
+        description="expanded uncertainty U of the reference standard, value units (type B)",
+    )
+    reference_k: float = Field(
+        2.0, gt=0, le=10, allow_inf_nan=False, description="coverage factor of that U"
+    )
+    extra_u: float | None = Field(
+        None,
+        gt=0,
+        allow_inf_nan=False,
+        description="one more stated standard uncertainty, value units (type B)",
+    )
+    extra_label: str | None = Field(
+        None,
+        max_length=128,
+        validate_default=True,
+        description="what extra_u is, e.g. 'target alignment'; needed with extra_u",
+    )
     points: list[PointIn] = Field(min_length=2, max_length=100_000)
+
+    @field_validator("extra_label")
+    @classmethod
+    def _label_goes_with_extra_u(cls, label: str | None, info: ValidationInfo) -> str | None:
+        label = (label or "").strip() or None
+        if "extra_u" not in info.data:  # extra_u itself was invalid; that error is reported
+            return label
+        if info.data["extra_u"] is not None and label is None:
+            raise ValueError("needed with an extra standard uncertainty (extra_u)")
+        if info.data["extra_u"] is None and label is not None:
+            raise ValueError("given without a value: give the extra standard uncertainty (extra_u)")
+        return label
 
 
 class PointRead(BaseModel):
@@ -44,6 +89,9 @@ class PointRead(BaseModel):
     used: bool
     excluded_reason: str | None
     residual: float
+    suspect_reason: str | None = Field(
+        None, description="why the point is suspect (flagged, still used); None when it is not"
+    )
 
 
 class FitRead(BaseModel):
@@ -56,6 +104,7 @@ class FitRead(BaseModel):
     rse: float
     dof: int
     sigma_source: str
+    noise: str = Field(description="where the scatter was taken to be: 'value' or 'reading'")
     valid_range: tuple[float, float]
     monotone: bool
     engine_version: str
@@ -74,6 +123,83 @@ class DecisionRead(BaseModel):
     tur_achieved: float
 
 
+class CandidateRead(BaseModel):
+    """One family of the ranking; ``error`` says why it could not be fitted (criteria None)."""
+
+    family: str
+    options: dict[str, Any]
+    label: str
+    n_params: int
+    rss: float | None
+    aic: float | None
+    aicc: float | None
+    bic: float | None
+    delta_aicc: float | None
+    monotone: bool | None
+    error: str | None
+
+
+class RankingRead(BaseModel):
+    """Every family of the type fitted to the same points, by AICc (shared.ranking)."""
+
+    recommended: str | None = Field(description="label of the recommended candidate, if any")
+    reason: str
+    candidates: list[CandidateRead]
+    chosen: str = Field(description="label of the candidate stored as this calibration's fit")
+    chosen_because: Literal["requested", "recommended", "fallback"] = Field(
+        description="requested: the session named the family; recommended: the ranking's "
+        "choice; fallback: nothing was recommended, so the type's first family that fitted"
+    )
+
+
+class SuspectRead(BaseModel):
+    """A point whose externally studentised residual is beyond the Bonferroni limit."""
+
+    index: int = Field(description="position of the point in the session, from 0")
+    t: float
+    reason: str
+
+
+class LackOfFitRead(BaseModel):
+    """Pure error against lack of fit, from repeated reference values (5 % level)."""
+
+    groups: int
+    ss_pure_error: float
+    dof_pure_error: int
+    ss_lack_of_fit: float
+    dof_lack_of_fit: int
+    f: float
+    p_value: float
+    repeatability_fit_space: float
+    significant: bool
+
+
+class BudgetRowRead(BaseModel):
+    source: str
+    kind: Literal["A", "B"]
+    distribution: str
+    u: float = Field(description="standard uncertainty in ``unit``")
+    unit: str
+    sensitivity: float = Field(description="value units per ``unit``")
+    contribution: float = Field(description="|sensitivity| u, value units")
+    dof: float | None = Field(description="degrees of freedom; None for infinitely many")
+
+
+class BudgetRead(BaseModel):
+    """GUM uncertainty budget of the value converted from one new reading (shared.budget)."""
+
+    reading: float
+    value: float
+    value_unit: str
+    reading_unit: str
+    rows: list[BudgetRowRead]
+    u: float = Field(description="combined standard uncertainty, value units")
+    dof_eff: float | None = Field(description="Welch-Satterthwaite; None for infinitely many")
+    k: float
+    expanded: float = Field(description="U = k u, value units")
+    level: float
+
+
 class CalibrationRead(BaseModel):
     id: int
     unit: str
@@ -81,6 +207,10 @@ class CalibrationRead(BaseModel):
     performed_at: datetime
     operator: str
     reference: str
+    reference_expanded_u: float | None
+    reference_k: float
+    extra_u: float | None
+    extra_label: str | None
     kind: SessionKind
     ambient: str | None
     notes: str | None
@@ -89,6 +219,14 @@ class CalibrationRead(BaseModel):
     points: list[PointRead]
     fit: FitRead
     decision: DecisionRead
+    ranking: RankingRead | None = Field(
+        description="None for calibrations stored before rankings were kept"
+    )
+    suspects: list[SuspectRead]
+    lack_of_fit: LackOfFitRead | None = Field(description="None when no reference value repeats")
+    budget: BudgetRead = Field(
+        description="at the middle of the valid range, or at the reading asked for"
+    )
     flags: list[dict[str, Any]] = Field(default_factory=list)
 
 

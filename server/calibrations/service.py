@@ -1,44 +1,128 @@
-"""Run a calibration: store the session and its points, fit server-side, judge, keep the fit."""
+"""Run a calibration: store the session and its points, fit server-side, judge, keep the fit.
+
+Every family the sensor type lists is fitted to the same points and ranked (shared.ranking); the
+stored fit is the family the session asked for, else the ranking's recommendation. The ranking,
+the suspect points and the lack-of-fit test are stored with the fit; the uncertainty budget is
+computed on read from the stored fit and the session's type B inputs (nothing is refitted).
+"""
 
 from __future__ import annotations
 
+import dataclasses
 from collections import defaultdict
-from typing import Any
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any, Literal
 
 import numpy as np
 
 import shared
 from server.calibrations.models import CalibrationSession, FitRecord, Point, latest_session
 from server.calibrations.schemas import (
+    BudgetRead,
+    BudgetRowRead,
     CalibrationCreate,
     CalibrationRead,
     CurrentCalibrationRead,
     DecisionRead,
     FitRead,
+    LackOfFitRead,
     PointIn,
     PointRead,
+    RankingRead,
+    SuspectRead,
 )
 from server.errors import Invalid, NotFound
-from server.fleet.models import SensorType, Unit
+from server.fleet.models import NoiseIn, SensorType, Unit
 from server.fleet.service import due_on
+from shared.budget import TypeB, budget
+from shared.diagnostics import lack_of_fit, suspect_points
+from shared.fitting import Noise
+from shared.ranking import Candidate, Ranking, rank
+
+ChosenBecause = Literal["requested", "recommended", "fallback"]
 
 
-def choose_family(sensor_type: SensorType, family: str | None) -> tuple[str, dict[str, Any]]:
-    name = family or sensor_type.families[0]
-    if name not in sensor_type.families:
+@dataclass(frozen=True, slots=True)
+class Outcome:
+    """A fit and everything judged about it, before anything is stored."""
+
+    fit: shared.Fit
+    decision: shared.Decision
+    ranking: dict[str, Any]  # Ranking.to_dict() plus "chosen" and "chosen_because"
+    diagnostics: dict[str, Any]  # {"suspects": [...], "lack_of_fit": {...} | None}
+
+
+def check_family(sensor_type: SensorType, family: str | None) -> None:
+    """A requested family must be one of the type's."""
+    if family is not None and family not in sensor_type.families:
         raise Invalid(
             f"{sensor_type.name} units are fitted with "
-            f"{', '.join(sensor_type.families)}; not {name!r}",
+            f"{', '.join(sensor_type.families)}; not {family!r}",
             field="family",
         )
-    return name, dict(sensor_type.family_options.get(name, {}))
 
 
-def fit_points(
-    sensor_type: SensorType, points: list[PointIn], family: str | None
-) -> tuple[shared.Fit, shared.Decision]:
-    """Fit and judge points without storing anything (the live preview uses this too)."""
-    name, options = choose_family(sensor_type, family)
+def candidates_of(sensor_type: SensorType) -> list[tuple[str, dict[str, Any]]]:
+    """The type's families with their options, in the type's order."""
+    return [(name, dict(sensor_type.family_options.get(name, {}))) for name in sensor_type.families]
+
+
+def choose(
+    sensor_type: SensorType, ranking: Ranking, family: str | None
+) -> tuple[Candidate, ChosenBecause]:
+    """The requested family, else the recommended one, else the type's first that fitted."""
+    by_family = {c.family: c for c in ranking.candidates}
+    if family is not None:
+        requested = by_family[family]
+        if requested.fit is None:
+            raise Invalid(f"cannot fit {family}: {requested.error}", field="points")
+        return requested, "requested"
+    if ranking.recommended is not None:
+        return ranking.recommended, "recommended"
+    for name in sensor_type.families:
+        if by_family[name].fit is not None:
+            return by_family[name], "fallback"
+    raise Invalid(
+        "; ".join(f"cannot fit {c.family}: {c.error}" for c in ranking.candidates),
+        field="points",
+    )
+
+
+def type_b_of(
+    sensor_type: SensorType,
+    reference_expanded_u: float | None,
+    reference_k: float,
+    extra_u: float | None,
+    extra_label: str | None,
+) -> TypeB:
+    """The type B inputs of a session: its reference standard and extra term, the type's
+    reading resolution."""
+    return TypeB(
+        reference_expanded=reference_expanded_u,
+        reference_k=reference_k,
+        resolution=sensor_type.reading_resolution,
+        extra_u=extra_u,
+        extra_label=extra_label or "stated extra term",
+    )
+
+
+def diagnostics_of(result: shared.Fit) -> dict[str, Any]:
+    """Suspect points and the lack-of-fit test, as plain JSON."""
+    found = lack_of_fit(result)
+    return {
+        "suspects": [
+            {"index": s.index, "t": s.t, "reason": s.reason} for s in suspect_points(result)
+        ],
+        "lack_of_fit": (
+            None
+            if found is None
+            else {**dataclasses.asdict(found), "significant": found.significant}
+        ),
+    }
+
+
+def _exclusions(points: Sequence[PointIn]) -> dict[int, str]:
     exclude = {}
     for i, p in enumerate(points):
         if p.excluded:
@@ -47,24 +131,43 @@ def fit_points(
                     "an excluded point needs a reason", field=f"points.{i}.exclude_reason"
                 )
             exclude[i] = p.exclude_reason.strip()
-    try:
-        result = shared.fit(
-            name,
-            [p.reading for p in points],
-            [p.reference_value for p in points],
-            exclude=exclude,
-            **options,
-        )
-    except shared.CalibrationError as exc:
-        raise Invalid(f"cannot fit {name}: {exc}", field="points") from exc
+    return exclude
+
+
+def fit_points(
+    sensor_type: SensorType,
+    points: Sequence[PointIn],
+    family: str | None,
+    type_b: TypeB | None = None,
+) -> Outcome:
+    """Rank the type's families on the points, keep one, judge it; nothing is stored."""
+    check_family(sensor_type, family)
+    exclude = _exclusions(points)
+    ranking = rank(
+        candidates_of(sensor_type),
+        [p.reading for p in points],
+        [p.reference_value for p in points],
+        exclude=exclude,
+        noise=NoiseIn(sensor_type.noise_in).value,
+    )
+    chosen, because = choose(sensor_type, ranking, family)
+    assert chosen.fit is not None  # choose() only returns candidates that were fitted
+    result = chosen.fit
     decision = shared.decide(
         result,
         sensor_type.tolerance_abs,
         sensor_type.tolerance_rel,
         tur=sensor_type.tur,
         unit=sensor_type.value_unit,
+        reading_unit=sensor_type.reading_unit,
+        type_b=type_b,
     )
-    return result, decision
+    return Outcome(
+        fit=result,
+        decision=decision,
+        ranking={**ranking.to_dict(), "chosen": chosen.label, "chosen_because": because},
+        diagnostics=diagnostics_of(result),
+    )
 
 
 def repeat_indices(values: list[float]) -> list[int]:
@@ -80,12 +183,21 @@ def repeat_indices(values: list[float]) -> list[int]:
 def run_calibration(
     session: Any, unit: Unit, data: CalibrationCreate, recorded_by: str | None
 ) -> CalibrationSession:
-    result, decision = fit_points(unit.sensor_type, data.points, data.family)
+    sensor_type = unit.sensor_type
+    inputs = type_b_of(
+        sensor_type, data.reference_expanded_u, data.reference_k, data.extra_u, data.extra_label
+    )
+    outcome = fit_points(sensor_type, data.points, data.family, inputs)
+    result, decision = outcome.fit, outcome.decision
     record = CalibrationSession(
         unit=unit,
         performed_at=data.performed_at,
         operator=data.operator,
         reference=data.reference,
+        reference_expanded_u=data.reference_expanded_u,
+        reference_k=data.reference_k,
+        extra_u=data.extra_u,
+        extra_label=data.extra_label,
         kind=data.kind,
         ambient=data.ambient,
         notes=data.notes,
@@ -109,6 +221,8 @@ def run_calibration(
             options=dict(result.options),
             result=result.to_dict(),
             decision=decision.to_dict(),
+            ranking=outcome.ranking,
+            diagnostics=outcome.diagnostics,
             passed=decision.passed,
             is_current=True,
             engine_version=result.engine_version,
@@ -126,9 +240,76 @@ def fit_of(record: CalibrationSession) -> tuple[shared.Fit, FitRecord]:
     return shared.Fit.from_dict(current.result), current
 
 
-def calibration_read(record: CalibrationSession) -> CalibrationRead:
+def stored_diagnostics(result: shared.Fit, stored: FitRecord) -> dict[str, Any]:
+    """The diagnostics kept with the fit; computed from the stored fit for older records."""
+    return stored.diagnostics if stored.diagnostics is not None else diagnostics_of(result)
+
+
+def middle_reading(result: shared.Fit) -> float:
+    lo, hi = result.valid_range
+    return (lo + hi) / 2.0
+
+
+def budget_of(
+    record: CalibrationSession, result: shared.Fit, reading: float | None = None
+) -> BudgetRead:
+    """The GUM budget of a value converted from ``reading`` (default: mid-range)."""
+    sensor_type = record.unit.sensor_type
+    at = middle_reading(result) if reading is None else reading
+    if not bool(result.in_range(at)):
+        lo, hi = result.valid_range
+        raise Invalid(
+            f"reading {at:g} {sensor_type.reading_unit} is outside the valid range "
+            f"{lo:g} to {hi:g} {sensor_type.reading_unit}; an uncertainty budget is only "
+            f"stated inside it",
+            field="reading",
+        )
+    inputs = type_b_of(
+        sensor_type,
+        record.reference_expanded_u,
+        record.reference_k,
+        record.extra_u,
+        record.extra_label,
+    )
+    found = budget(
+        result,
+        at,
+        inputs,
+        value_unit=sensor_type.value_unit,
+        reading_unit=sensor_type.reading_unit,
+    )
+    return BudgetRead(
+        reading=found.reading,
+        value=found.value,
+        value_unit=sensor_type.value_unit,
+        reading_unit=sensor_type.reading_unit,
+        rows=[
+            BudgetRowRead(
+                source=r.source,
+                kind="A" if r.kind == "A" else "B",
+                distribution=r.distribution,
+                u=r.u,
+                unit=r.unit,
+                sensitivity=r.sensitivity,
+                contribution=r.contribution,
+                dof=r.dof if np.isfinite(r.dof) else None,
+            )
+            for r in found.rows
+        ],
+        u=found.u,
+        dof_eff=found.dof_eff if np.isfinite(found.dof_eff) else None,
+        k=found.k,
+        expanded=found.expanded,
+        level=found.level,
+    )
+
+
+def calibration_read(record: CalibrationSession, reading: float | None = None) -> CalibrationRead:
     result, stored = fit_of(record)
     reasons = dict(result.excluded)
+    diagnostics = stored_diagnostics(result, stored)
+    suspects = [SuspectRead(**s) for s in diagnostics["suspects"]]
+    suspect_reasons = {s.index: s.reason for s in suspects}
     points = [
         PointRead(
             reference_value=p.reference_value,
@@ -137,6 +318,7 @@ def calibration_read(record: CalibrationSession) -> CalibrationRead:
             used=bool(result.used[i]),
             excluded_reason=reasons.get(i),
             residual=float(result.residuals[i]),
+            suspect_reason=suspect_reasons.get(i),
         )
         for i, p in enumerate(record.points)
     ]
@@ -150,11 +332,13 @@ def calibration_read(record: CalibrationSession) -> CalibrationRead:
         rse=result.rse,
         dof=result.dof,
         sigma_source=result.sigma_source,
+        noise=result.noise,
         valid_range=result.valid_range,
         monotone=result.monotone,
         engine_version=result.engine_version,
         fitted_at=stored.created_at,
     )
+    lof = diagnostics["lack_of_fit"]
     return CalibrationRead(
         id=record.id,
         unit=record.unit.serial,
@@ -162,6 +346,10 @@ def calibration_read(record: CalibrationSession) -> CalibrationRead:
         performed_at=record.performed_at,
         operator=record.operator,
         reference=record.reference,
+        reference_expanded_u=record.reference_expanded_u,
+        reference_k=record.reference_k,
+        extra_u=record.extra_u,
+        extra_label=record.extra_label,
         kind=record.kind,
         ambient=record.ambient,
         notes=record.notes,
@@ -170,13 +358,94 @@ def calibration_read(record: CalibrationSession) -> CalibrationRead:
         points=points,
         fit=fit,
         decision=DecisionRead(**stored.decision),
+        ranking=RankingRead(**stored.ranking) if stored.ranking is not None else None,
+        suspects=suspects,
+        lack_of_fit=LackOfFitRead(**lof) if lof is not None else None,
+        budget=budget_of(record, result, reading),
     )
 
 
-def current_calibration(unit: Unit) -> CurrentCalibrationRead:
+def current_calibration(unit: Unit, reading: float | None = None) -> CurrentCalibrationRead:
     last = latest_session(unit.sessions)
     if last is None:
         raise NotFound(f"unit {unit.serial!r} has no calibration yet")
     return CurrentCalibrationRead(
-        unit=unit.serial, due_on=due_on(unit), calibration=calibration_read(last)
+        unit=unit.serial, due_on=due_on(unit), calibration=calibration_read(last, reading)
     )
+
+
+# -- fitting a file offline (`sensorledger fit`): no database, no sensor type ---------------------
+
+
+@dataclass(frozen=True, slots=True)
+class OfflineFit:
+    """A fit of points from a file, with its diagnostics and, when no family was named, the
+    ranking of every catalog family on the same points."""
+
+    fit: shared.Fit
+    ranking: Ranking | None
+    chosen_because: str  # "requested", "recommended" or "lowest AICc (nothing recommended)"
+    diagnostics: dict[str, Any]
+
+    def to_dict(self) -> dict[str, Any]:
+        """``Fit.to_dict()`` (so ``Fit.from_dict`` reads it back) plus formula, standard
+        uncertainties, diagnostics and the ranking (None when a family was named)."""
+        return {
+            **self.fit.to_dict(),
+            "formula": shared.get_family(self.fit.family).formula,
+            "stderr": self.fit.stderr,
+            "suspects": self.diagnostics["suspects"],
+            "lack_of_fit": self.diagnostics["lack_of_fit"],
+            "ranking": self.ranking.to_dict() if self.ranking else None,
+            "chosen_because": self.chosen_because,
+        }
+
+
+def degree_option(family: str, degree: int | tuple[int, int]) -> dict[str, Any]:
+    """``{"degree": ...}`` for a family that takes one, else Invalid naming --degree."""
+    if "degree" not in shared.get_family(family).options:
+        raise Invalid(f"{family} has no degree option", field="degree")
+    return {"degree": list(degree) if isinstance(degree, tuple) else degree}
+
+
+def run_offline_fit(
+    points: Sequence[PointIn],
+    *,
+    family: str | None = None,
+    degree: int | tuple[int, int] | None = None,
+    noise: Noise = "value",
+) -> OfflineFit:
+    """Fit ``family`` (with ``degree``) to the points; without a family, rank every catalog
+    family (``degree`` set where it suits: an integer for polynomial, a pair for rational) and
+    keep the recommended one, else the lowest AICc. Engine errors become Invalid."""
+    exclude = _exclusions(points)
+    reading = [p.reading for p in points]
+    value = [p.reference_value for p in points]
+    try:
+        if family is not None:
+            options = degree_option(family, degree) if degree is not None else {}
+            result = shared.fit(family, reading, value, noise=noise, exclude=exclude, **options)
+            return OfflineFit(result, None, "requested", diagnostics_of(result))
+        candidates: list[tuple[str, dict[str, Any]]] = []
+        for name in sorted(shared.FAMILIES):
+            suits = degree is not None and (
+                (name == "polynomial" and isinstance(degree, int))
+                or (name == "rational" and isinstance(degree, tuple))
+            )
+            candidates.append((name, degree_option(name, degree) if suits and degree else {}))
+        ranking = rank(candidates, reading, value, exclude=exclude, noise=noise)
+    except shared.CalibrationError as exc:
+        raise Invalid(f"cannot fit {family or 'the points'}: {exc}", field="family") from exc
+    fitted = [c for c in ranking.candidates if c.fit is not None]
+    if ranking.recommended is not None:
+        chosen, because = ranking.recommended, "recommended"
+    elif fitted:
+        chosen, because = fitted[0], "lowest AICc (nothing recommended)"
+    else:
+        raise Invalid(
+            "no family could be fitted: "
+            + "; ".join(f"{c.family}: {c.error}" for c in ranking.candidates),
+            field="file",
+        )
+    assert chosen.fit is not None
+    return OfflineFit(chosen.fit, ranking, because, diagnostics_of(chosen.fit))

@@ -22,6 +22,13 @@ class UnitStatus(enum.StrEnum):
     retired = "retired"
 
 
+class NoiseIn(enum.StrEnum):
+    """Where a type's calibration scatter is (see shared.fitting): in the value or the reading."""
+
+    value = "value"
+    reading = "reading"
+
+
 class SensorType(Base):
     __tablename__ = "sensor_type"
 
@@ -39,6 +46,12 @@ class SensorType(Base):
     drift_limit_abs: Mapped[float | None] = mapped_column(Float)
     interval_days: Mapped[int] = mapped_column(Integer, default=365)
     tur: Mapped[float] = mapped_column(Float, default=4.0)
+    noise_in: Mapped[NoiseIn] = mapped_column(
+        Enum(NoiseIn, native_enum=False, length=16, validate_strings=True),
+        default=NoiseIn.value,
+        server_default=NoiseIn.value.value,
+    )
+    reading_resolution: Mapped[float | None] = mapped_column(Float)  # one step, reading units
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
 
     units: Mapped[list[Unit]] = relationship(back_populates="sensor_type")

@@ -7,7 +7,7 @@ from typing import Annotated, Any
 
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
 
-from server.fleet.models import UnitStatus
+from server.fleet.models import NoiseIn, UnitStatus
 
 Name = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=64)]
 ShortText = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=16)]
@@ -42,6 +42,17 @@ class SensorTypeCreate(BaseModel):
     )
     interval_days: int = Field(365, ge=1, le=3650, description="recalibration interval")
     tur: float = Field(4.0, gt=0, description="required test-uncertainty ratio")
+    noise_in: NoiseIn = Field(
+        NoiseIn.value,
+        description="where the scatter of the points is, used for every fit of this type: "
+        "'value' (the reference or the physics) or 'reading' (e.g. ADC noise of a rangefinder)",
+    )
+    reading_resolution: float | None = Field(
+        None,
+        gt=0,
+        allow_inf_nan=False,
+        description="one reading step, reading units (e.g. 1 count); a type B input",
+    )
 
     @model_validator(mode="after")
     def _consistent(self) -> SensorTypeCreate:
@@ -69,6 +80,8 @@ class SensorTypeRead(BaseModel):
     drift_limit_abs: float | None
     interval_days: int
     tur: float
+    noise_in: NoiseIn
+    reading_resolution: float | None
     created_at: datetime
 
 

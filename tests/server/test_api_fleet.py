@@ -36,6 +36,7 @@ def test_sensor_type_round_trip(client, admin):
     body = created.json()
     assert body["family_options"]["polynomial"] == {"degree": 2, "through_zero": False}
     assert body["family_options"]["line"] == {"through_zero": False}
+    assert body["noise_in"] == "value" and body["reading_resolution"] is None  # the defaults
     listed = client.get("/api/v1/sensor-types", headers=admin).json()
     assert listed["total"] == 1 and listed["items"][0]["name"] == "load cell 50 N"
 
@@ -54,6 +55,8 @@ def test_sensor_type_round_trip(client, admin):
         ),
         ({"tolerance_abs": -1}, "tolerance_abs", "greater than or equal"),
         ({"colour": "red"}, "colour", "Extra inputs"),
+        ({"noise_in": "reference"}, "noise_in", "'value' or 'reading'"),
+        ({"reading_resolution": 0}, "reading_resolution", "greater than 0"),
     ],
 )
 def test_bad_sensor_type_names_the_field_and_writes_nothing(client, admin, change, field, words):
@@ -148,3 +151,13 @@ def test_unit_errors(client, admin):
     assert blank.status_code == 422 and blank.json()["field"] == "serial"
     gone = client.get("/api/v1/units/NOPE", headers=admin)
     assert gone.status_code == 404 and "NOPE" in gone.json()["detail"]
+
+
+def test_noise_model_and_resolution_are_kept(client, admin):
+    body = {**RANGEFINDER, "noise_in": "reading", "reading_resolution": 1}
+    created = client.post("/api/v1/sensor-types", json=body, headers=admin)
+    assert created.status_code == 201, created.text
+    assert created.json()["noise_in"] == "reading"
+    assert created.json()["reading_resolution"] == 1.0
+    listed = client.get("/api/v1/sensor-types", headers=admin).json()["items"][0]
+    assert (listed["noise_in"], listed["reading_resolution"]) == ("reading", 1.0)

@@ -7,16 +7,21 @@ uvicorn (replaced by a recorder), and with a port that is already taken.
 from __future__ import annotations
 
 import io
+import json
+import re
 import socket
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 import sqlalchemy as sa
+from alembic.script import ScriptDirectory
 from fastapi.testclient import TestClient
 from sqlalchemy.orm import Session
 
+import shared
 from server import cli
 from server.accounts.models import User
 from server.accounts.service import check_password
@@ -24,6 +29,7 @@ from server.app import create_app
 from server.cli import main
 from server.config import Settings
 from server.db import make_engine
+from server.migrate import alembic_config
 
 
 def run(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, str, str]:
@@ -63,14 +69,15 @@ def uvicorn_calls(monkeypatch: pytest.MonkeyPatch) -> list[dict[str, Any]]:
 def test_db_upgrade_creates_the_schema_and_says_which_revision(capsys, db_file) -> None:
     code, out, err = run(capsys, "db", "upgrade", "--db", db_file)
     assert (code, err) == (0, "")
-    assert "upgraded from an empty database to revision 0001 (the newest)" in out
+    head = ScriptDirectory.from_config(alembic_config()).get_current_head()
+    assert f"upgraded from an empty database to revision {head} (the newest)" in out
     assert str(Path(db_file).resolve()) in out
     engine = make_engine(f"sqlite:///{db_file}")
     tables = sa.inspect(engine).get_table_names()
     engine.dispose()
     assert {"sensor_type", "unit", "calibration_session", "user_account", "token"} <= set(tables)
     code, out, _ = run(capsys, "db", "upgrade", "--db", db_file)
-    assert code == 0 and "already at revision 0001" in out
+    assert code == 0 and f"already at revision {head}" in out
 
 
 def test_the_environment_names_the_database_when_db_is_absent(capsys, tmp_path, monkeypatch):
@@ -191,3 +198,139 @@ def test_serve_without_users_says_how_to_create_one(capsys, db_file, free_port, 
     assert "No user exists yet" in out
     assert f"sensorledger user add NAME --role admin --db {db_file}" in out
     assert "demo" not in out
+
+
+# -- fit: offline, a file of points ---------------------------------------------------------------
+
+
+def pot_csv(path: Path, *, header: str = "reference_value,reading", extra: str = "") -> Path:
+    """An invented 300 deg pot: 0.0733 deg/count with small known deviations (no source)."""
+    counts = np.linspace(100, 4000, 11)
+    deviations = np.array([0.01, -0.02, 0.015, 0, -0.01, 0.02, -0.015, 0.005, 0, -0.005, 0.01])
+    degrees = -7.0 + 0.0733 * counts + deviations
+    rows = "".join(f"{float(v)!r},{float(r)!r}\n" for v, r in zip(degrees, counts, strict=True))
+    path.write_text(f"{header}\n{rows}{extra}")
+    return path
+
+
+def ranger_csv(path: Path) -> Path:
+    """Invented rangefinder: counts = 41000/(mm + 12) + 35, folding back below 70 mm."""
+    mm = np.array([30.0, 50.0, 70, 90, 120, 160, 220, 300, 400, 550, 700])
+    counts = np.round(41000 / (mm + 12) + 35)
+    counts[:2] = [330.0, 460.0]
+    rng = np.random.default_rng(5)
+    counts = counts + rng.normal(0, 0.3, counts.size)
+    path.write_text(
+        "reference_value,reading\n"
+        + "".join(f"{v:g},{r:.2f}\n" for v, r in zip(mm, counts, strict=True))
+    )
+    return path
+
+
+def test_fit_reports_a_named_family_without_a_database(capsys, tmp_path, monkeypatch) -> None:
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setenv("SENSORLEDGER_DATABASE_URL", f"sqlite:///{tmp_path / 'never.db'}")
+    csv_file = pot_csv(tmp_path / "pot.csv")
+    code, out, err = run(capsys, "fit", str(csv_file), "--family", "line")
+    assert (code, err) == (0, "")
+    assert not (tmp_path / "never.db").exists() and not (tmp_path / "data").exists()
+    data = np.loadtxt(csv_file, delimiter=",", skiprows=1)
+    slope, intercept = np.polyfit(data[:, 1], data[:, 0], 1)  # numpy as the reference
+    assert "family        line\n" in out
+    assert "formula       value = c0 + c1·r" in out
+    params = dict(re.findall(r"^  (c[01])\s+(\S+)\s+± \S+$", out, re.M))
+    assert float(params["c0"]) == pytest.approx(intercept, rel=1e-6)  # 7 significant digits
+    assert float(params["c1"]) == pytest.approx(slope, rel=1e-6)
+    assert "dof           9\n" in out
+    assert "valid range   100 to 4000 (reading units" in out
+    assert "excluded      none" in out and "suspect       none" in out
+    assert "lack of fit   not tested" in out
+    assert "Ranking" not in out  # a named family is not ranked
+
+
+def test_fit_without_a_family_ranks_the_catalog(capsys, tmp_path) -> None:
+    code, out, err = run(capsys, "fit", str(ranger_csv(tmp_path / "ranger.csv")))
+    assert (code, err) == (0, "")
+    assert "Ranking by AICc (lower is better)" in out
+    rows = re.findall(r"^  (\S+)\s+(\d+)\s+(\S+)\s+(\S+)\s+(\S+)\s+(yes|no)(.*)$", out, re.M)
+    labels = [r[0] for r in rows]
+    assert "line" in labels and "inverse_offset" in labels
+    [recommended] = [r for r in rows if "<- recommended" in r[6]]
+    assert float(recommended[3]) <= 2.0  # within delta-AICc 2 of the best
+    fitted = [r for r in rows if r[3] != "—"]
+    assert [float(r[2]) for r in fitted] == sorted(float(r[2]) for r in fitted)  # by AICc
+    assert f"family        {recommended[0]}" in out and "[recommended]" in out
+    assert re.search(r"^excluded      #1 \(30, [\d.]+\): fold-back", out, re.M)  # with the reason
+    assert "Recommendation: " in out
+    # only families that fit are ranked; the others are named once
+    not_fitted = re.search(r"^Could not be fitted: (.*)\.$", out, re.M)
+    assert not_fitted is None or all(n not in labels for n in not_fitted.group(1).split(", "))
+
+
+def test_fit_json_is_the_fit_plus_the_ranking(capsys, tmp_path) -> None:
+    code, out, err = run(capsys, "fit", str(ranger_csv(tmp_path / "r.csv")), "--json")
+    assert (code, err) == (0, "")
+    doc = json.loads(out)
+    fitted = shared.Fit.from_dict(doc)  # Fit.to_dict keys, read back by the engine
+    assert doc["ranking"]["recommended"] and doc["chosen_because"] == "recommended"
+    assert fitted.family == doc["family"] and doc["stderr"].keys() == doc["params"].keys()
+    assert [e[0] for e in doc["excluded"]] == [0, 1] and isinstance(doc["suspects"], list)
+
+    csv_file = pot_csv(tmp_path / "pot.csv")
+    code, out, _ = run(capsys, "fit", str(csv_file), "--family", "line", "--json",
+                       "--noise", "reading")  # fmt: skip
+    doc = json.loads(out)
+    assert code == 0 and doc["ranking"] is None and doc["noise"] == "reading"
+    # noise in the reading: the line is the inverse of the reading-on-value regression (numpy)
+    data = np.loadtxt(csv_file, delimiter=",", skiprows=1)
+    slope, intercept = np.polyfit(data[:, 0], data[:, 1], 1)
+    assert doc["params"]["c1"] == pytest.approx(1 / slope, rel=1e-8)
+    assert doc["params"]["c0"] == pytest.approx(-intercept / slope, rel=1e-8)
+
+
+def test_fit_shows_excluded_suspect_points_and_lack_of_fit(capsys, tmp_path) -> None:
+    csv_file = pot_csv(
+        tmp_path / "pot.csv",
+        header="reference_value,reading,excluded,exclude_reason",
+        extra="100.0,1500,yes,probe slipped\n",
+    )
+    text = csv_file.read_text().splitlines()
+    text[7] = text[7].split(",")[0] + ",2500.0"  # one reading 19 counts (1.4 deg) off
+    # three reference values measured twice, the repeat reading one count higher
+    repeats = [f"{row.split(',')[0]},{float(row.split(',')[1]) + 1}" for row in text[2:5]]
+    csv_file.write_text("\n".join(text + repeats) + "\n")
+    code, out, err = run(capsys, "fit", str(csv_file), "--family", "polynomial", "--degree", "2")
+    assert (code, err) == (0, ""), err
+    assert "family        polynomial (degree=2)" in out
+    assert "excluded      #12 (100, 1500): probe slipped" in out
+    assert re.search(r"^suspect       #7 \([\d.]+, 2500\): studentised residual", out, re.M)
+    assert re.search(r"^lack of fit   F = \S+ on 8 and 3 dof, p = \S+: ", out, re.M)
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["nope.csv"], "error: cannot read nope.csv: No such file or directory"),
+        (["bad.csv"], "error: bad.csv: the header row must name reference_value, reading"),
+        (["row.csv"], "error: row.csv: row 3, column reading"),
+        (["pot.csv", "--family", "nonesuch"], "error: unknown family 'nonesuch'; the catalog"),
+        (["pot.csv", "--family", "line", "--degree", "3"], "error: line has no degree option"),
+        (["few.csv", "--family", "polynomial", "--degree", "5"], "error: cannot fit polynomial"),
+    ],
+)
+def test_fit_mistakes_exit_2_with_one_line(capsys, tmp_path, monkeypatch, argv, message) -> None:
+    monkeypatch.chdir(tmp_path)
+    pot_csv(tmp_path / "pot.csv")
+    (tmp_path / "bad.csv").write_text("distance,counts\n1,2\n")
+    (tmp_path / "row.csv").write_text("reference_value,reading\n1,2\n3,four\n")
+    (tmp_path / "few.csv").write_text("reference_value,reading\n1,2\n2,3\n3,5\n4,7\n")
+    code, out, err = run(capsys, "fit", *argv)
+    assert code == 2 and out == ""
+    assert err.startswith(message), err
+    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+
+
+def test_fit_is_a_row_of_the_command_table(capsys) -> None:
+    assert ("fit",) in [c.path for c in cli.COMMANDS]
+    code, out, _ = run(capsys, "--help")
+    assert code == 0 and re.search(r"^\s+fit\s+fit points from a CSV file", out, re.M)

@@ -22,6 +22,7 @@ from server.db import make_engine, make_sessionmaker
 from server.demo import (
     DEMO_PASSWORD,
     DRIFTED_SERIAL,
+    NOISY_SERIAL,
     ODD_SERIAL,
     QUARANTINED_SERIAL,
     DemoSummary,
@@ -229,3 +230,23 @@ def test_loading_is_deterministic(demo: Demo, tmp_path) -> None:
     with make_sessionmaker(engine)() as again:
         assert snapshot(again) == snapshot(demo.session)
     engine.dispose()
+
+
+def test_noise_in_the_reading_type_b_inputs_and_the_ranking(demo: Demo) -> None:
+    """Every type fits with the noise in the reading and states its resolution; every session
+    records its reference standard; the load cell's two families are ranked, and the only
+    failures are the two the story sets up."""
+    assert all(t.noise_in == "reading" and t.reading_resolution for t in demo.types())
+    for unit in demo.units():
+        for s in unit.sessions:
+            assert s.reference_expanded_u and s.reference_k == 2.0, unit.serial
+            assert s.current_fit.result["noise"] == "reading"
+            assert s.current_fit.ranking["chosen_because"] == "recommended"
+            assert s.current_fit.diagnostics is not None
+    load_cell = next(t for t in demo.types() if t.quantity == "force")
+    for unit in demo.units(load_cell.name):
+        for s in unit.sessions:
+            ranking = s.current_fit.ranking
+            assert [c["family"] for c in ranking["candidates"]] == ["polynomial", "line"]
+            assert ranking["recommended"] == "polynomial(degree=2)"
+    assert set(demo.summary.failed_serials) == {QUARANTINED_SERIAL, NOISY_SERIAL}

@@ -1,8 +1,9 @@
 """decide(): pass/fail cases built by hand from the rule in shared/acceptance.py.
 
 Rule: allowed error at a point = tolerance_abs + tolerance_rel/100 * |value|. Pass when every used
-point's |residual| <= allowed, and the k = 2 expanded uncertainty U of the fitted curve at every
-used point is <= allowed / TUR (TUR 4 by default).
+point's |residual| <= allowed, the k = 2 expanded uncertainty U at every used point is
+<= allowed / TUR (TUR 4 by default), and the fitted curve is monotone over its valid range.
+U is the fitted curve's alone unless type B inputs are given (see the section below).
 
 The points: readings r = 0..10, values 1 + 2 r + e with e = d * ((r - 5)^2 - 10), d = 0.01.
 e sums to zero and is orthogonal to r (it is the discrete quadratic orthogonal polynomial), so the
@@ -21,6 +22,7 @@ import numpy as np
 import pytest
 
 from shared import BadInput, Fit, decide, fit
+from shared.budget import TypeB
 
 D = 0.01
 R = np.arange(11.0)
@@ -132,3 +134,74 @@ def test_negative_tolerance_or_ratio_is_bad_input(
 ) -> None:
     with pytest.raises(BadInput):
         decide(line_fit, tolerance_abs, tolerance_rel, tur=tur)
+
+
+# ---- type B inputs in the TUR, and monotonicity -------------------------------------------------
+# Rule: U = 2 sqrt(u_curve^2 + u_ref^2 + u_res^2) at each used point, u_ref = U_ref / k_ref,
+# u_res = step / sqrt(12) * |slope|. For the line above the slope is exactly 2 everywhere and
+# u_curve is largest at r = 0 and r = 10, u_curve^2 = (U_MAX / 2)^2 = S^2 * 35/110 = 0.0030333.
+U_CURVE_END_SQ = (U_MAX / 2.0) ** 2
+
+
+def test_the_reference_standard_enters_the_tur(line_fit: Fit) -> None:
+    # U_ref = 0.1 at k = 2: u_ref = 0.05. At the ends U = 2 sqrt(0.0030333 + 0.0025) = 0.148773;
+    # 0.5 / 0.148773 = 3.36 < 4: the fit that passed alone now fails on the ratio alone.
+    big_u = 2.0 * math.sqrt(U_CURVE_END_SQ + 0.05**2)
+    assert abs(big_u - 0.148773) < 1e-6
+    d = decide(line_fit, 0.5, None, type_b=TypeB(reference_expanded=0.1, reference_k=2.0))
+    assert not d.passed
+    assert len(d.reasons) == 1 and "test-uncertainty ratio 3.36:1" in d.reasons[0]
+    assert d.max_expanded_uncertainty == pytest.approx(big_u, rel=1e-9)
+    assert d.tur_achieved == pytest.approx(0.5 / big_u, rel=1e-9)
+    assert "reference standard (U = 0.1, k = 2)" in d.rule
+    # 0.6 / 0.148773 = 4.03 >= 4: passes
+    assert decide(line_fit, 0.6, None, type_b=TypeB(reference_expanded=0.1)).passed
+    # the same U stated at k = 1 is u_ref = 0.1: U = 2 sqrt(0.0030333 + 0.01) = 0.228327
+    d = decide(line_fit, 0.6, None, type_b=TypeB(reference_expanded=0.1, reference_k=1.0))
+    assert d.max_expanded_uncertainty == pytest.approx(2 * math.sqrt(U_CURVE_END_SQ + 0.01))
+    assert abs(d.max_expanded_uncertainty - 0.228327) < 1e-6
+
+
+def test_the_reading_resolution_enters_the_tur(line_fit: Fit) -> None:
+    # one step of 0.1: u_res = 0.1 / sqrt(12) * 2 = 0.0577350; at the ends
+    # U = 2 sqrt(0.0030333 + 0.0033333) = 0.159583, and with u_ref = 0.05 as well
+    # U = 2 sqrt(0.0030333 + 0.0025 + 0.0033333) = 0.188326.
+    resolution_only = 2.0 * math.sqrt(U_CURVE_END_SQ + (0.1 / math.sqrt(12.0) * 2.0) ** 2)
+    assert abs(resolution_only - 0.159583) < 1e-6
+    d = decide(line_fit, 0.7, None, type_b=TypeB(resolution=0.1), reading_unit="counts")
+    assert d.max_expanded_uncertainty == pytest.approx(resolution_only, rel=1e-9)
+    assert d.passed  # 0.7 / 0.159583 = 4.39
+    assert "reading resolution (one step = 0.1 counts, rectangular)" in d.rule
+    both = TypeB(reference_expanded=0.1, reference_k=2.0, resolution=0.1)
+    d = decide(line_fit, 0.7, None, type_b=both)
+    assert abs(d.max_expanded_uncertainty - 0.188326) < 1e-6
+    assert not d.passed and "3.72:1" in d.reasons[0]  # 0.7 / 0.188326 = 3.717
+
+
+def test_a_stated_extra_term_is_not_part_of_the_tur(line_fit: Fit) -> None:
+    # the rule counts the curve, the reference standard and the resolution only
+    d = decide(line_fit, 0.5, None, type_b=TypeB(extra_u=10.0))
+    assert d.passed and d.max_expanded_uncertainty == pytest.approx(U_MAX, rel=1e-9)
+
+
+def test_a_curve_that_is_not_monotone_fails_with_the_reason() -> None:
+    # v = (r - 5)^2 on r = 0..10: a parabola through every point exactly (residuals and
+    # uncertainty zero), turning at r = 5 inside the valid range 0..10.
+    f = fit("polynomial", R, (R - 5.0) ** 2, degree=2)
+    assert not f.monotone
+    d = decide(f, 0.5, None)
+    assert not d.passed
+    assert len(d.reasons) == 1
+    assert d.reasons[0].startswith("the fitted curve is not monotone over its valid range")
+    assert "readings 0 to 10" in d.reasons[0]
+    assert "monotone" in d.rule
+
+
+@pytest.mark.parametrize(
+    "inputs",
+    [TypeB(reference_expanded=-0.1), TypeB(reference_expanded=0.1, reference_k=0.0),
+     TypeB(resolution=-1.0)],
+)  # fmt: skip
+def test_negative_type_b_inputs_are_bad_input(line_fit: Fit, inputs: TypeB) -> None:
+    with pytest.raises(BadInput):
+        decide(line_fit, 0.5, None, type_b=inputs)

@@ -16,7 +16,7 @@ from server.calibrations.models import SessionKind
 from server.calibrations.schemas import CalibrationCreate, PointIn
 from server.db import make_engine, make_sessionmaker
 from server.fleet import service as fleet
-from server.fleet.models import UnitStatus
+from server.fleet.models import NoiseIn, UnitStatus
 from server.fleet.schemas import SensorTypeCreate, UnitCreate
 from server.migrate import upgrade
 
@@ -24,6 +24,7 @@ TECHNICIAN = ("tess", "bench-pass-1")
 VIEWER = ("vic", "look-only-1")
 IR_TYPE = "IR rangefinder 10-80 cm"
 POT_TYPE = "Rotary pot 270 deg"
+JIG_U = 0.3  # mm, k = 2: the distance jig's expanded uncertainty (invented certificate)
 # distances on the jig (mm); the first two lie below the IR sensor's turnover
 DISTANCES = (40, 60, 80, 100, 125, 150, 175, 200, 250, 300, 350, 400, 500, 600, 700, 800)
 
@@ -70,12 +71,14 @@ def _calibrate(
     when: datetime,
     kind: SessionKind,
     reference: str,
+    reference_expanded_u: float | None = None,
 ) -> None:
     unit = fleet.get_unit(session, serial)
     data = CalibrationCreate(
         performed_at=when,
         operator=TECHNICIAN[0],
         reference=reference,
+        reference_expanded_u=reference_expanded_u,
         kind=kind,
         points=[PointIn(reference_value=v, reading=r) for v, r in points],
     )
@@ -105,6 +108,8 @@ def seed(url: str) -> Fleet:
                 tolerance_rel=2,
                 drift_limit_abs=5,
                 interval_days=180,
+                noise_in=NoiseIn.reading,
+                reading_resolution=1,
             ),
         )
         fleet.create_sensor_type(
@@ -116,9 +121,12 @@ def seed(url: str) -> Fleet:
                 reading_unit="counts",
                 reading_min=0,
                 reading_max=1023,
-                families=["line"],
+                families=["line", "polynomial"],
+                family_options={"polynomial": {"degree": 2}},
                 tolerance_abs=1.5,
                 interval_days=365,
+                noise_in=NoiseIn.reading,
+                reading_resolution=1,
             ),
         )
         for serial, type_name in (
@@ -151,6 +159,7 @@ def seed(url: str) -> Fleet:
             when=now - timedelta(days=3),
             kind=SessionKind.periodic,
             reference=jig,
+            reference_expanded_u=JIG_U,
         )
         _calibrate(
             session,
@@ -170,6 +179,7 @@ def seed(url: str) -> Fleet:
             when=now - timedelta(days=30),
             kind=SessionKind.incoming,
             reference="dividing head DH-1",
+            reference_expanded_u=0.1,
         )
         session.commit()
     engine.dispose()

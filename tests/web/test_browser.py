@@ -13,6 +13,7 @@ import shared
 from server.calibrations.models import CalibrationSession
 from server.db import make_engine
 from server.fleet.models import Unit
+from shared.budget import TypeB
 from tests.web.conftest import sign_in
 from tests.web.seed import TECHNICIAN, Fleet, ir_readings, paste_text
 
@@ -127,8 +128,11 @@ def test_add_a_calibration_through_the_form(
 ) -> None:
     url, fleet = live_db
     points = ir_readings(201_000, 29, 15, seed=18)
-    fitted = shared.fit("inverse_offset", [r for _, r in points], [v for v, _ in points])
-    expected = "PASS" if shared.decide(fitted, 3, 2).passed else "FAIL"
+    # the seeded type: noise in the reading, one count of resolution
+    fitted = shared.fit(
+        "inverse_offset", [r for _, r in points], [v for v, _ in points], noise="reading"
+    )
+    expected = "PASS" if shared.decide(fitted, 3, 2, type_b=TypeB(resolution=1)).passed else "FAIL"
     before = session_count(url, fleet.fresh)
 
     page.goto(f"/units/{fleet.fresh}")
@@ -172,3 +176,44 @@ def test_bad_paste_names_the_line_and_stores_nothing(
     assert session_count(url, fleet.fresh) == before
     page.locator("#calibrate").scroll_into_view_if_needed()
     page.screenshot(path=artifacts / "form-error.png", full_page=True)
+
+
+def test_budget_reading_changes_in_place(
+    page: Any, server: str, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    _, fleet = live_db
+    page.goto(f"/units/{fleet.calibrated}")
+    page.wait_for_selector("#residual-plot.js-plotly-plot .main-svg")
+    page.evaluate("window.__same_document = true")
+    assert "1636.5 counts" in page.locator(".budget-result").inner_text()
+    page.fill("#budget-reading", "400")
+    page.click("#budget button[type=submit]")
+    page.wait_for_function(
+        "document.querySelector('.budget-result')?.innerText.includes('400 counts')"
+    )
+    assert page.evaluate("window.__same_document === true"), "swapped, not reloaded"
+    page.wait_for_url(re.compile(r"[?&]reading=400"))  # the reading survives a reload
+    rows = page.locator("table.budget tbody th").all_inner_texts()
+    assert rows[0].startswith("calibration curve") and len(rows) == 4
+    page.locator("#budget").screenshot(path=artifacts / "unit-budget.png")
+
+    page.fill("#budget-reading", "5000")
+    page.click("#budget button[type=submit]")
+    page.locator("#budget-error").wait_for()
+    assert "outside the valid range" in page.locator("#budget-error").inner_text()
+    assert page.get_attribute("#budget-reading", "aria-invalid") == "true"
+
+
+def test_failing_unit_shows_suspects_and_model_choice(
+    page: Any, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    _, fleet = live_db
+    page.goto(f"/units/{fleet.failing}")
+    page.wait_for_selector("#residual-plot.js-plotly-plot .main-svg")
+    assert "1 suspect point" in page.locator(".suspects").inner_text()
+    assert page.locator("#residual-plot .scatterlayer .trace text").all_text_contents() == ["#6"]
+    assert page.locator("details.points").get_attribute("open") is not None
+    assert page.locator("#model-choice tr.in-use code").inner_text() == "inverse_offset"
+    page.screenshot(path=artifacts / "unit-failing.png", full_page=True)
+    page.goto(f"/units/{fleet.pot}")
+    page.locator("#model-choice").screenshot(path=artifacts / "unit-model-choice.png")

@@ -12,11 +12,11 @@ from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
-from sqlalchemy import select
+from sqlalchemy import select, update
 from sqlalchemy.orm import selectinload
 
 from server.app import create_app
-from server.calibrations.models import CalibrationSession
+from server.calibrations.models import CalibrationSession, FitRecord
 from server.calibrations.pages import parse_points
 from server.config import Settings
 from server.errors import Invalid
@@ -416,3 +416,129 @@ def test_caution_is_on_every_page(client: TestClient, anonymous: TestClient) -> 
         client.get("/units/NOPE").text,
     ):
         assert "do not on their own make a calibration accredited or" in page
+
+
+# ---- model choice, fit checks, uncertainty budget -----------------------------------------------
+
+
+def test_unit_page_shows_the_model_choice(client: TestClient) -> None:
+    html = client.get(f"/units/{FLEET.pot}").text
+    section = html[html.index('id="model-choice"') :]
+    section = section[: section.index("</section>")]
+    rows = re.findall(r"<tr class=\"([^\"]*)\">\s*<th scope=\"row\"><code>([^<]+)</code>", section)
+    assert [label for _, label in rows] == ["line", "polynomial(degree=2)"]
+    assert "in-use" in rows[0][0]
+    assert "recommended</span>" in section.split("polynomial(degree=2)")[0]
+    assert "the fewest parameters (2)" in section  # the ranking's reason
+    assert "In use: <code>line</code>, the ranking&#39;s recommendation." in section
+    for word in ("AICc", "ΔAICc", "BIC", "monotone", "parameters"):
+        assert f">{word}</th>" in section
+
+
+def test_suspect_points_are_marked_in_the_table_and_the_plot(client: TestClient) -> None:
+    html = client.get(f"/units/{FLEET.failing}").text
+    # the seeded failing unit has one reading 100 counts off at 150 mm (point 6)
+    assert "1 suspect point</strong>" in html
+    assert re.search(r"<li><strong>#6</strong> \(reference 150 mm,\s+reading \d+ counts\): "
+                     r"studentised residual -\d+\.\d\d is beyond", html)  # fmt: skip
+    row = re.search(r'<tr class="outside">\s*<td>6</td>.*?</tr>', html, re.S)
+    assert row and "suspect</strong>: studentised residual" in row.group(0)
+    assert '<details class="card points" open>' in html  # opened so the suspect is seen
+    figures = [json.loads(unescape(m)) for m in re.findall(r'data-figure="([^"]+)"', html)]
+    [suspect] = [t for t in figures[1]["data"] if t.get("name") == "suspect point (still used)"]
+    assert suspect["text"] == ["#6"] and "studentised residual" in suspect["customdata"][0]
+    assert "Lack-of-fit test: needs reference values measured more than once" in html
+
+
+def test_budget_at_mid_range_then_at_a_typed_reading(client: TestClient) -> None:
+    html = client.get(f"/units/{FLEET.calibrated}").text
+    assert 'id="budget-reading" name="reading"' in html
+    assert re.search(r"Reading <strong class=\"mono\">1636\.5 counts</strong>", html)
+    for source in ("calibration curve", "repeatability of a new reading",
+                   "reference standard (U = 0.3, k = 2)", "reading resolution"):  # fmt: skip
+        assert f'<th scope="row">{source}' in html
+    assert "expanded uncertainty U = k u<sub>c</sub>" in html
+
+    # without JavaScript: the whole page, with the budget at that reading
+    page = client.get(f"/units/{FLEET.calibrated}?reading=500")
+    assert page.status_code == 200 and "<!doctype html>" in page.text
+    assert 'Reading <strong class="mono">500 counts</strong>' in page.text
+    assert 'value="500"' in page.text
+    # htmx: the budget block alone
+    block = client.get(f"/units/{FLEET.calibrated}?reading=500", headers={"HX-Request": "true"})
+    assert block.status_code == 200 and block.headers["vary"] == "HX-Request"
+    assert block.text.lstrip().startswith('<section class="card" id="budget"')
+    assert "<html" not in block.text and 'Reading <strong class="mono">500 counts' in block.text
+
+
+@pytest.mark.parametrize(
+    ("reading", "message"),
+    [("99999", "outside the valid range 225 to 3048 counts"), ("abc", "“abc” is not a number")],
+)
+def test_a_reading_that_cannot_be_used_is_a_422_with_the_reason(
+    client: TestClient, reading: str, message: str
+) -> None:
+    page = client.get(f"/units/{FLEET.calibrated}", params={"reading": reading})
+    assert page.status_code == 422 and "<!doctype html>" in page.text
+    assert (
+        message in page.text and 'aria-invalid="true" aria-describedby="budget-error"' in page.text
+    )
+    block = client.get(
+        f"/units/{FLEET.calibrated}", params={"reading": reading}, headers={"HX-Request": "true"}
+    )
+    assert block.status_code == 422
+    assert block.text.lstrip().startswith('<section class="card" id="budget"')
+    assert message in block.text
+
+
+def test_the_form_records_the_reference_standard(client: TestClient, app) -> None:
+    form = client.get(f"/units/{FLEET.calibrated}").text
+    # U and k of the last session are offered again, with the reference
+    assert re.search(r'id="reference_expanded_u" name="reference_expanded_u" value="0.3"', form)
+    answer = client.post(
+        f"/units/{FLEET.fresh}/calibrations",
+        data=form_data(
+            reference_expanded_u="0.4", reference_k="2", extra_u="0.1", extra_label="card tilt"
+        ),
+        follow_redirects=False,
+    )
+    assert answer.status_code == 303, answer.text
+    (stored,) = sessions_of(app, FLEET.fresh)
+    assert (stored.reference_expanded_u, stored.reference_k) == (0.4, 2.0)
+    assert (stored.extra_u, stored.extra_label) == (0.1, "card tilt")
+    page = client.get(answer.headers["location"]).text
+    assert "(U = 0.4 mm, k = 2)" in page
+    assert '<th scope="row">card tilt</th>' in page
+
+
+@pytest.mark.parametrize(
+    ("changes", "message", "marked"),
+    [
+        ({"reference_expanded_u": "0,3"}, "reference U: “0,3” is not a number",
+         "reference_expanded_u"),
+        ({"reference_expanded_u": "-1"}, "reference U: Input should be greater than 0",
+         "reference_expanded_u"),
+        ({"reference_k": "0"}, "coverage factor k: Input should be greater than 0", "reference_k"),
+        ({"extra_u": "0.2"}, "what the extra uncertainty is: needed with an extra", "extra_label"),
+        ({"extra_label": "tilt"}, "what the extra uncertainty is: given without a value",
+         "extra_label"),
+    ],
+)  # fmt: skip
+def test_type_b_form_errors_name_the_field(
+    client: TestClient, app, changes: dict[str, str], message: str, marked: str
+) -> None:
+    answer = client.post(f"/units/{FLEET.fresh}/calibrations", data=form_data(**changes))
+    assert answer.status_code == 422
+    assert message in answer.text
+    assert re.search(rf'id="{marked}"[^>]*aria-invalid="true"', answer.text)
+    assert sessions_of(app, FLEET.fresh) == []
+
+
+def test_a_calibration_stored_before_rankings_shows_what_it_can(client: TestClient, app) -> None:
+    with app.state.sessionmaker() as session:  # as revision 0002 leaves older fits
+        session.execute(update(FitRecord).values(ranking=None, diagnostics=None))
+        session.commit()
+    page = client.get(f"/units/{FLEET.failing}")
+    assert page.status_code == 200
+    assert "stored before model ranking was kept; only inverse_offset was fitted" in page.text
+    assert "1 suspect point</strong>" in page.text  # diagnostics computed from the stored fit
