@@ -155,7 +155,7 @@ def budget(
             raise BadInput("the reference standard's coverage factor k must be positive")
         rows.append(
             _row(
-                f"reference standard (U = {inputs.reference_expanded:g}, "
+                f"reference standard (U = {_with_unit(inputs.reference_expanded, value_unit)}, "
                 f"k = {inputs.reference_k:g})",
                 "B",
                 "normal",
@@ -168,9 +168,7 @@ def budget(
     if inputs.resolution:
         rows.append(
             _row(
-                f"reading resolution ({inputs.resolution:g} {reading_unit} step)".replace(
-                    "  ", " "
-                ),
+                f"reading resolution (step {_with_unit(inputs.resolution, reading_unit)})",
                 "B",
                 "rectangular",
                 inputs.resolution / np.sqrt(12.0),
@@ -216,3 +214,7 @@ def _row(
         float(abs(sensitivity) * u),
         float(dof),
     )
+
+
+def _with_unit(x: float, unit: str) -> str:
+    return f"{x:g} {unit}" if unit else f"{x:g}"

@@ -60,7 +60,7 @@ class Candidate:
     @property
     def label(self) -> str:
         shown = {k: v for k, v in self.options.items() if v not in (False, None)}
-        extra = ", ".join(f"{k}={v}" for k, v in shown.items())
+        extra = ", ".join(f"{k}={_option_text(v)}" for k, v in shown.items())
         return f"{self.family}({extra})" if extra else self.family
 
 
@@ -162,3 +162,10 @@ def rank(
         chosen = None
         reason = "no monotone fit within delta-AICc 2 of the best; review the points"
     return Ranking(tuple(scored + failed), chosen, reason, excluded)
+
+
+def _option_text(value: Any) -> str:
+    """``(2, 2)`` or ``[2, 2]`` as ``2/2``; anything else as it prints."""
+    if isinstance(value, list | tuple):
+        return "/".join(str(v) for v in value)
+    return str(value)

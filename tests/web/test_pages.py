@@ -455,7 +455,7 @@ def test_budget_at_mid_range_then_at_a_typed_reading(client: TestClient) -> None
     assert 'id="budget-reading" name="reading"' in html
     assert re.search(r"Reading <strong class=\"mono\">1636\.5 counts</strong>", html)
     for source in ("calibration curve", "repeatability of a new reading",
-                   "reference standard (U = 0.3, k = 2)", "reading resolution"):  # fmt: skip
+                   "reference standard (U = 0.3 mm, k = 2)", "reading resolution"):  # fmt: skip
         assert f'<th scope="row">{source}' in html
     assert "expanded uncertainty U = k u<sub>c</sub>" in html
 
