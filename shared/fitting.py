@@ -509,6 +509,12 @@ def fit_many(
     datasets: Iterable[tuple[ArrayLike, ArrayLike]],
     **options: Any,
 ) -> list[Fit]:
-    """Fit the same family to many units' points; the same results as ``fit`` one by one."""
-    get_family(family).check_options(options)  # a bad name is an error even with no units
-    return [fit(family, r, v, **options) for r, v in datasets]
+    """Fit the same family to many units' points; the same results as ``fit`` one by one.
+
+    Vectorised across units where the family and options allow (see ``shared.batch``), ``fit``
+    unit by unit otherwise. ``options`` are ``fit``'s keywords and the family's options. A unit
+    ``fit`` cannot fit raises its error, the message starting with the unit's index.
+    """
+    from shared.batch import fit_many as batched  # imported here: shared.batch uses this module
+
+    return batched(family, datasets, **options)

@@ -27,6 +27,7 @@ from shared import (
     fit,
     fit_many,
 )
+from tests.shared.fitcompare import INVERSE_OFFSET, assert_fits_agree
 from tests.shared.synthetic import (
     DISTANCES_MM,
     peaked_counts,
@@ -261,7 +262,8 @@ def test_fit_many_equals_fit_one_by_one() -> None:
     many = fit_many("inverse_offset", units)
     assert len(many) == 4
     for got, (r, v) in zip(many, units, strict=True):
-        assert_same_fit(got, fit("inverse_offset", r, v))
+        # the batched solver lands on the same minimum to rounding (see tests/shared/test_batch.py)
+        assert_fits_agree(got, fit("inverse_offset", r, v), INVERSE_OFFSET)
 
 
 # -- unknown names -----------------------------------------------------------------------------
