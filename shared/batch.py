@@ -76,7 +76,7 @@ from shared.foldback import MIN_REVERSAL, find_foldback
 Mask = NDArray[np.bool_]
 Index = NDArray[np.intp]
 
-FIT_KEYWORDS = ("noise", "u_value", "u_reading", "exclude")  # fit()'s own keywords
+FIT_KEYWORDS = ("noise", "u_value", "u_reading", "relative", "exclude")  # fit()'s own keywords
 SCAN_CHUNK = 64  # units per block of the r0 scan (units x points x scan points, in cache)
 SCAN_WINDOW = 5  # scan points around the single-precision candidates redone in double precision
 SECANT_MAX = 12  # secant steps at most on d cost / dt before the Newton check takes over
@@ -106,9 +106,9 @@ def fit_many(
 ) -> list[Fit]:
     """Fit ``family`` to each unit's (reading, value) points: the results of ``fit`` one by one.
 
-    ``options`` are ``fit``'s keywords (noise, u_value, u_reading, exclude) and the family's
-    options, applied to every unit. Raises like ``fit`` for the first unit it cannot fit, with the
-    unit's index at the start of the message.
+    ``options`` are ``fit``'s keywords (noise, u_value, u_reading, relative, exclude) and the
+    family's options, applied to every unit. Raises like ``fit`` for the first unit it cannot
+    fit, with the unit's index at the start of the message.
     """
     fam = get_family(family)
     fam_options = {k: val for k, val in options.items() if k not in FIT_KEYWORDS}

@@ -383,6 +383,7 @@ def fit(
     noise: Noise = "value",
     u_value: ArrayLike | None = None,
     u_reading: ArrayLike | None = None,
+    relative: bool = False,
     exclude: Mapping[int, str] | None = None,
     **options: Any,
 ) -> Fit:
@@ -398,6 +399,10 @@ def fit(
     u_value, u_reading : standard uncertainties of each value (value units) and each reading
         (reading units), scalars or one per point. With either, the covariance is absolute
         (``sigma_source="given"``) and ``noise`` is ignored.
+    relative : with ``relative=True`` the given uncertainties are relative weights only: their
+        scale is estimated from the residuals (``sigma_source="residuals"``; the covariance and
+        a new observation's noise are scaled by ``Fit.scale``), as weighted least squares does
+        when only the ratios of the point uncertainties are known.
     exclude : point index -> reason, for points a user has excluded; kept in ``Fit.excluded``.
     **options : family options, e.g. ``degree=3`` for ``polynomial``; unknown names are an error.
 
@@ -418,8 +423,11 @@ def fit(
         raise BadInput(f"noise must be 'value' or 'reading', not {noise!r}")
     given_v = _uncertainty("u_value", u_value, r.shape)
     given_r = _uncertainty("u_reading", u_reading, r.shape)
-    source: SigmaSource = "residuals" if given_v is None and given_r is None else "given"
-    if source == "given":
+    weighted = given_v is not None or given_r is not None
+    if relative and not weighted:
+        raise BadInput("relative=True needs u_value and/or u_reading to weight the points")
+    source: SigmaSource = "given" if weighted and not relative else "residuals"
+    if weighted:
         u_v = given_v if given_v is not None else np.zeros_like(r)
         u_r = given_r if given_r is not None else np.zeros_like(r)
         noise = "reading" if given_v is None else "value"
@@ -471,13 +479,14 @@ def fit(
     dof = int(used.sum()) - len(names)
     scale = float(np.sqrt(np.sum(wu * fit_space**2) / dof)) if dof else 0.0
     rse = float(np.sqrt(np.sum(resid_all[used] ** 2) / dof)) if dof else 0.0
-    if source == "residuals":
+    if not weighted:
         cov = sol.cov_unscaled * scale**2
         noise_v, noise_r = (scale, 0.0) if noise == "value" else (0.0, scale)
     else:
-        cov = sol.cov_unscaled
-        noise_v = float(np.sqrt(np.mean(u_v[used] ** 2)))
-        noise_r = float(np.sqrt(np.mean(u_r[used] ** 2)))
+        factor = scale if relative else 1.0
+        cov = sol.cov_unscaled * factor**2
+        noise_v = factor * float(np.sqrt(np.mean(u_v[used] ** 2)))
+        noise_r = factor * float(np.sqrt(np.mean(u_r[used] ** 2)))
     weights = np.zeros_like(r)
     weights[used] = wu
     result = Fit(

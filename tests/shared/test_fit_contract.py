@@ -397,3 +397,22 @@ def test_excluding_a_missing_point_is_bad_input(index: int) -> None:
     r = np.arange(5.0)
     with pytest.raises(BadInput, match="does not exist"):
         fit("line", r, 2 * r + 1, exclude={index: "typo"})
+
+
+def test_relative_weights_scale_the_covariance_by_the_residuals() -> None:
+    # reference: statsmodels WLS (weights 1/u^2), whose covariance is scaled by the residual
+    # variance, and scipy curve_fit with absolute_sigma=False
+    rng = np.random.default_rng(21)
+    r = np.linspace(0.0, 10.0, 15)
+    u = 0.05 * (1.0 + r)  # noise grows with the reading
+    v = 3.0 + 2.0 * r + rng.normal(0.0, 1.7 * u)  # true sd = 1.7 u: only ratios are known
+    f = fit("line", r, v, u_value=u, relative=True)
+    res = sm.WLS(v, sm.add_constant(r), weights=1.0 / u**2).fit()
+    assert f.sigma_source == "residuals"
+    np.testing.assert_allclose(list(f.params.values()), res.params, rtol=REL)
+    np.testing.assert_allclose(f.covariance, res.cov_params(), rtol=REL)
+    assert f.scale == pytest.approx(math.sqrt(res.scale), rel=REL)
+    absolute = fit("line", r, v, u_value=u)
+    np.testing.assert_allclose(f.covariance, absolute.covariance * f.scale**2, rtol=REL)
+    with pytest.raises(BadInput, match="relative"):
+        fit("line", r, v, relative=True)
