@@ -98,3 +98,32 @@ def unscaled_covariance(jac: Array, weight: Array) -> Array:
     v = vt.T / s
     cov: Array = (v @ v.T) / np.outer(norms, norms)
     return cov
+
+
+def polish(
+    family: Family, start: Array, reading: Array, value: Array, weight: Array, options: Options
+) -> Array:
+    """Levenberg–Marquardt on the weighted value residuals from ``start`` (analytic Jacobian).
+
+    A trial step that overflows or crosses a pole gets a huge residual, so the solver backs off.
+    Returns the polished parameters, or ``start`` when the polish ended no better than it began.
+    """
+    from scipy.optimize import least_squares  # local: only the non-linear families need it
+
+    sw = np.sqrt(weight)
+
+    def resid(p: Array) -> Array:
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            out: Array = (family.evaluate(p, reading, options) - value) * sw
+        return np.where(np.isfinite(out), out, 1e150)
+
+    def jac(p: Array) -> Array:
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            out: Array = family.jacobian(p, reading, options) * sw[:, None]
+        return np.where(np.isfinite(out), out, 0.0)
+
+    found = least_squares(
+        resid, start, jac=jac, method="lm", x_scale="jac", xtol=1e-15, ftol=1e-15, gtol=1e-15
+    )
+    start_cost = 0.5 * float(resid(start) @ resid(start))
+    return np.asarray(found.x if found.cost <= start_cost else start, dtype=float)

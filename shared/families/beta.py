@@ -21,7 +21,6 @@ from types import MappingProxyType
 from typing import Any
 
 import numpy as np
-from scipy.optimize import least_squares
 
 from shared.errors import BadInput, SingularFit
 from shared.families.base import (
@@ -29,6 +28,7 @@ from shared.families.base import (
     Options,
     Solution,
     check_known_options,
+    polish,
     unscaled_covariance,
     weighted_lstsq,
 )
@@ -104,23 +104,8 @@ class Beta:
         start = np.array([math.exp(log_c + (inv_t0 - a) * b_start), b_start])
         if not np.all(np.isfinite(start)):
             raise SingularFit("beta: R0 at t0_c lies too far from the points to be represented")
-        sw = np.sqrt(weight)
 
-        def resid(p: Array) -> Array:
-            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                out: Array = (self.evaluate(p, reading, options) - value) * sw
-            return np.where(np.isfinite(out), out, 1e150)  # a trial step through a pole
-
-        def jac(p: Array) -> Array:
-            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-                out = self.jacobian(p, reading, options) * sw[:, None]
-            return np.where(np.isfinite(out), out, 0.0)
-
-        polished = least_squares(
-            resid, start, jac=jac, method="lm", x_scale="jac", xtol=1e-15, ftol=1e-15, gtol=1e-15
-        )
-        start_cost = 0.5 * float(resid(start) @ resid(start))
-        params = polished.x if polished.cost <= start_cost else start
+        params = polish(self, start, reading, value, weight, options)
         t_fit = self._kelvin(params, reading, options)[1]
         if params[0] <= 0 or not np.all(np.isfinite(t_fit) & (t_fit > 0)):
             raise SingularFit("beta: no fit with R0 > 0 and 1/T > 0 over the readings exists")

@@ -22,7 +22,7 @@ from types import MappingProxyType
 from typing import Any
 
 import numpy as np
-from scipy.optimize import least_squares, minimize_scalar
+from scipy.optimize import minimize_scalar
 
 from shared.errors import BadInput, SingularFit
 from shared.families.base import (
@@ -30,6 +30,7 @@ from shared.families.base import (
     Options,
     Solution,
     check_known_options,
+    polish,
     unscaled_covariance,
 )
 
@@ -83,7 +84,6 @@ class ExpRise:
         span = float(np.ptp(reading))
         if span == 0:
             raise BadInput("exp_rise: all readings are equal: the rate cannot be determined")
-        sw = np.sqrt(weight)
         w_total = float(weight.sum())
         v_mean = float(weight @ value) / w_total
 
@@ -126,22 +126,8 @@ class ExpRise:
         _, a_best, c_best = projected(np.array([found.x]))
         start = np.array([a_best[0], np.exp(found.x), c_best[0]][: 3 if offset else 2])
 
-        def resid(p: Array) -> Array:
-            with np.errstate(over="ignore", invalid="ignore"):
-                out: Array = (self.evaluate(p, reading, options) - value) * sw
-            return np.where(np.isfinite(out), out, 1e150)  # a trial step that overflows
-
-        def jac(p: Array) -> Array:
-            with np.errstate(over="ignore", invalid="ignore"):
-                out = self.jacobian(p, reading, options) * sw[:, None]
-            return np.where(np.isfinite(out), out, 0.0)
-
-        polished = least_squares(
-            resid, start, jac=jac, method="lm", x_scale="jac", xtol=1e-15, ftol=1e-15, gtol=1e-15
-        )
-        start_cost = 0.5 * float(resid(start) @ resid(start))
-        ok = polished.cost <= start_cost and polished.x[1] > 0
-        params = polished.x if ok else start
+        polished = polish(self, start, reading, value, weight, options)
+        params = polished if polished[1] > 0 else start
         rise = -np.expm1(-params[1] * reading)
         if np.ptp(rise) <= FLAT * np.abs(rise).max():
             raise SingularFit(RISE_COMPLETE)

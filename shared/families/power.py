@@ -17,7 +17,7 @@ from types import MappingProxyType
 from typing import Any
 
 import numpy as np
-from scipy.optimize import least_squares, minimize_scalar
+from scipy.optimize import minimize_scalar
 
 from shared.errors import BadInput, SingularFit
 from shared.families.base import (
@@ -25,6 +25,7 @@ from shared.families.base import (
     Options,
     Solution,
     check_known_options,
+    polish,
     unscaled_covariance,
 )
 
@@ -102,7 +103,6 @@ class Power:
         e_folds = float(np.ptp(log_r))
         if e_folds == 0:
             raise BadInput("power: all readings are equal: the exponent cannot be determined")
-        sw = np.sqrt(weight)
 
         def projected(b: Array) -> tuple[Array, Array]:
             """Cost and a_c (a = a_c / r_c^b) for each trial exponent, closed form."""
@@ -129,21 +129,7 @@ class Power:
         a_start = float(projected(np.array([b_start]))[1][0]) * float(np.exp(-b_start * log_c))
         start = np.array([a_start, b_start])
 
-        def resid(p: Array) -> Array:
-            with np.errstate(over="ignore", invalid="ignore"):
-                out: Array = (self.evaluate(p, reading, options) - value) * sw
-            return np.where(np.isfinite(out), out, 1e150)  # a trial step that overflows
-
-        def jac(p: Array) -> Array:
-            with np.errstate(over="ignore", invalid="ignore"):
-                out = self.jacobian(p, reading, options) * sw[:, None]
-            return np.where(np.isfinite(out), out, 0.0)
-
-        polished = least_squares(
-            resid, start, jac=jac, method="lm", x_scale="jac", xtol=1e-15, ftol=1e-15, gtol=1e-15
-        )
-        start_cost = 0.5 * float(resid(start) @ resid(start))
-        params = polished.x if polished.cost <= start_cost else start
+        params = polish(self, start, reading, value, weight, options)
         if not np.all(np.isfinite(params)) or params[0] == 0:
             raise SingularFit("power: no finite, non-zero fit a * r^b exists for these points")
         cov = unscaled_covariance(self.jacobian(params, reading, options), weight)

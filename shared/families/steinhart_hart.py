@@ -19,7 +19,6 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.optimize import least_squares
 
 from shared.errors import BadInput, SingularFit
 from shared.families.base import (
@@ -27,6 +26,7 @@ from shared.families.base import (
     Options,
     Solution,
     check_known_options,
+    polish,
     unscaled_covariance,
     weighted_lstsq,
 )
@@ -109,23 +109,8 @@ class SteinhartHart:
         t_k = value + KELVIN
         design = np.stack([np.ones_like(log_r), log_r, log_r**3], axis=-1)
         start, _ = weighted_lstsq(design, 1.0 / t_k, weight * t_k**4)
-        sw = np.sqrt(weight)
 
-        def resid(p: Array) -> Array:
-            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                out: Array = (self.evaluate(p, reading, options) - value) * sw
-            return np.where(np.isfinite(out), out, 1e150)  # a trial step through a pole
-
-        def jac(p: Array) -> Array:
-            with np.errstate(over="ignore", invalid="ignore"):
-                out = self.jacobian(p, reading, options) * sw[:, None]
-            return np.where(np.isfinite(out), out, 0.0)
-
-        polished = least_squares(
-            resid, start, jac=jac, method="lm", x_scale="jac", xtol=1e-15, ftol=1e-15, gtol=1e-15
-        )
-        start_cost = 0.5 * float(resid(start) @ resid(start))
-        params = polished.x if polished.cost <= start_cost else start
+        params = polish(self, start, reading, value, weight, options)
         t_fit = self._kelvin(params, reading)[2]
         if not np.all(np.isfinite(t_fit) & (t_fit > 0)):
             raise SingularFit(
