@@ -17,6 +17,10 @@ from server.calibrations import pages as calibration_pages
 from server.calibrations import routes as calibration_routes
 from server.config import Settings
 from server.db import make_engine, make_sessionmaker
+from server.exports import pages as export_pages
+from server.exports import routes as export_routes
+from server.flags import pages as flag_pages
+from server.flags import routes as flag_routes
 from server.fleet import pages as fleet_pages
 from server.fleet import routes as fleet_routes
 from server.htmx import WEB
@@ -58,6 +62,16 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         )
 
     app.mount("/static", StaticFiles(directory=WEB / "static"), name="static")
-    for module in (fleet_routes, calibration_routes, account_pages, fleet_pages, calibration_pages):
+    for module in (
+        fleet_routes,
+        calibration_routes,
+        export_routes,
+        flag_routes,
+        account_pages,
+        fleet_pages,
+        calibration_pages,
+        export_pages,
+        flag_pages,
+    ):
         app.include_router(module.router)
     return app

@@ -51,6 +51,8 @@ from server.config import Settings, database_url_from
 from server.db import make_engine, make_sessionmaker
 from server.demo import ADMIN, DEMO_PASSWORD, TECHNICIAN, fleet_size, load_demo
 from server.errors import DomainError, Invalid, NotFound
+from server.exports import service as exports
+from server.fleet.service import get_unit
 from server.formatting import significant, uncertainty
 from server.migrate import alembic_config, upgrade
 from shared.ranking import Ranking
@@ -560,6 +562,61 @@ def _configure_fit(parser: argparse.ArgumentParser) -> None:
     )
 
 
+# -- export --------------------------------------------------------------------------------------
+
+
+def _step(text: str) -> int:
+    try:
+        step = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if step < 1:
+        raise argparse.ArgumentTypeError(f"the step must be at least 1, not {step}")
+    return step
+
+
+def _export(args: argparse.Namespace) -> int:
+    with _session(args) as session:
+        unit = get_unit(session, args.serial)
+        if args.format == "c":
+            found = exports.firmware_header(unit)
+        elif args.format == "json":
+            found = exports.table_json(unit, args.step)
+        else:
+            found = exports.table_csv(unit, args.step)
+    text = found.content if found.content.endswith("\n") else found.content + "\n"
+    if args.output is None:
+        sys.stdout.write(text)
+        return EXIT_OK
+    try:
+        Path(args.output).write_text(text, encoding="utf-8")
+    except OSError as exc:
+        raise Invalid(
+            f"cannot write {args.output}: {exc.strerror or exc}", field="output"
+        ) from None
+    print(f"Wrote {args.output} ({args.format}, unit {unit.serial}).", file=sys.stderr)
+    return EXIT_OK
+
+
+def _configure_export(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("serial", metavar="SERIAL", help="the unit whose current calibration")
+    parser.add_argument(
+        "--format",
+        required=True,
+        choices=["csv", "json", "c"],
+        help="csv or json: the conversion table; c: a C99 firmware header",
+    )
+    parser.add_argument(
+        "--step",
+        type=_step,
+        default=1,
+        metavar="N",
+        help="table rows every N reading units over the type's reading span (default 1)",
+    )
+    parser.add_argument("--output", metavar="FILE", help="write to FILE instead of standard output")
+    _db_option(parser)
+
+
 # -- the command table ---------------------------------------------------------------------------
 
 
@@ -579,8 +636,8 @@ GROUPS = {
     "token": "API tokens for scripts",
 }
 
-# One row per command; the parser is built from this table. New commands (import, export, fit,
-# backup) get a row here and a function above.
+# One row per command; the parser is built from this table. New commands (import, backup)
+# get a row here and a function above.
 COMMANDS = (
     Command(("serve",), "run the web app (and the API) on this machine", _configure_serve, _serve),
     Command(
@@ -602,6 +659,12 @@ COMMANDS = (
         _token_create,
     ),
     Command(
+        ("export",),
+        "export a unit's current calibration: conversion table (CSV, JSON) or C header",
+        _configure_export,
+        _export,
+    ),
+    Command(
         ("fit",),
         "fit points from a CSV file and report (offline: no database, no server)",
         _configure_fit,
@@ -612,6 +675,7 @@ COMMANDS = (
 EPILOG = """examples:
   sensorledger serve --demo                     try it with an invented fleet
   sensorledger fit points.csv                   rank every family on a file of points
+  sensorledger export IR-0001 --format c --output ir_0001.h
   sensorledger user add ada --role admin        then sign in as ada
   sensorledger token create ada --label "bench PC" | tail -n1
 """

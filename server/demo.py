@@ -63,6 +63,8 @@ from server.calibrations.models import SessionKind
 from server.calibrations.schemas import CalibrationCreate, PointIn
 from server.calibrations.service import run_calibration
 from server.errors import Conflict
+from server.flags.models import EventKind, InstallationEvent
+from server.flags.service import recompute_flags
 from server.fleet import service as fleet
 from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeCreate, UnitCreate
@@ -460,6 +462,22 @@ def _place(unit: Unit, box: Box, position: int, kind: Kind) -> None:
         unit.installed_in = f"kit {kit:02d} / {kind.mounts[position % len(kind.mounts)]}"
 
 
+def _record_installations(session: Session) -> None:
+    """An installation event for each installed unit, the day after its first calibration (the
+    kits were built from units calibrated on receipt)."""
+    for unit in session.scalars(select(Unit).where(Unit.status == UnitStatus.installed)):
+        first = min(s.performed_at for s in unit.sessions)
+        session.add(
+            InstallationEvent(
+                unit=unit,
+                kind=EventKind.installed,
+                location=unit.installed_in,
+                at=first + timedelta(days=1),
+                recorded_by=TECHNICIAN,
+            )
+        )
+
+
 def load_demo(session: Session) -> DemoSummary:
     """Fill an empty database with the invented demo fleet; flushes, never commits."""
     types, units = fleet_size(session)
@@ -494,7 +512,10 @@ def load_demo(session: Session) -> DemoSummary:
             results[serial] = _calibrate(session, unit, box, position, truth, rng)
             _place(unit, box, position, kind)
             installed += unit.status == UnitStatus.installed
+    _record_installations(session)
     session.flush()
+    for sensor_type in sensor_types.values():
+        recompute_flags(session, sensor_type)
     sessions = sum(len(r) for r in results.values())
     passed = sum(sum(r) for r in results.values())
     return DemoSummary(

@@ -57,6 +57,13 @@ def measured(x: float | None, digits: int = 4) -> str:
     return text.rstrip("0").rstrip(".") if "." in text else text
 
 
+def residual_decimals(rse: float) -> int:
+    """Decimals that show residuals one digit finer than the scatter (rse to two digits)."""
+    if not math.isfinite(rse) or rse <= 0:
+        return 3
+    return max(0, min(8, 2 - math.floor(math.log10(rse))))
+
+
 def utc_minute(when: datetime | None) -> str:
     if when is None:
         return DASH

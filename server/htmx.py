@@ -43,6 +43,7 @@ def render(
     """The page ``name``, or only its ``block`` when htmx asked for a fragment."""
     template = env.get_template(name)
     ctx.setdefault("user", getattr(request.state, "user", None))
+    ctx.setdefault("attention_count", getattr(request.state, "attention_count", None))
     ctx["request"] = request
     ctx.setdefault("status_code", status_code)
     if is_partial(request):

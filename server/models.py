@@ -3,12 +3,15 @@
 from server.accounts.models import Token, User
 from server.calibrations.models import CalibrationSession, FitRecord, Point
 from server.db import Base
+from server.flags.models import Flag, InstallationEvent
 from server.fleet.models import SensorType, Unit
 
 __all__ = [
     "Base",
     "CalibrationSession",
     "FitRecord",
+    "Flag",
+    "InstallationEvent",
     "Point",
     "SensorType",
     "Token",

@@ -10,6 +10,7 @@ from server.accounts import service
 from server.accounts.models import Role, TokenKind, User
 from server.db import SessionDep
 from server.errors import NotSignedIn
+from server.flags.service import count_needing_attention
 
 COOKIE = "sensorledger_signin"
 bearer = HTTPBearer(auto_error=False, description="A token from `sensorledger token create`")
@@ -32,6 +33,7 @@ def page_user(request: Request, session: SessionDep) -> User:
         raise NotSignedIn("please sign in")
     user = service.user_for_token(session, raw, TokenKind.browser)
     request.state.user = user
+    request.state.attention_count = count_needing_attention(session)
     return user
 
 

@@ -20,9 +20,13 @@ from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
 from server.db import SessionDep
 from server.errors import Invalid
+from server.exports.service import header_problem
+from server.flags.panels import unit_panels
+from server.flags.service import recompute_flags
 from server.fleet.models import SensorType, Unit
 from server.fleet.pages import unit_url
 from server.fleet.service import due_on, get_unit
+from server.formatting import residual_decimals
 from server.htmx import is_partial, render
 
 router = APIRouter(include_in_schema=False)
@@ -247,6 +251,7 @@ def unit_context(
         "budget": None,
         "budget_error": None,
         "budget_reading": (reading or "").strip(),
+        "header_problem": header_problem(sensor_type),
     }
     history = []
     for record in sorted(unit.sessions, key=lambda s: (s.performed_at, s.id), reverse=True):
@@ -260,6 +265,7 @@ def unit_context(
             }
         )
     ctx["history"] = history
+    ctx.update(unit_panels(unit))
     ctx["just_saved"] = next((h for h in history if h["record"].id == saved), None)
     if current is None:
         return ctx
@@ -343,13 +349,6 @@ def _budget_reading(text: str | None, sensor_type: SensorType) -> float | None:
     return _optional_number(text, "reading", f"reading ({sensor_type.reading_unit})")
 
 
-def residual_decimals(rse: float) -> int:
-    """Decimals that show residuals one digit finer than the scatter (rse to two digits)."""
-    if not math.isfinite(rse) or rse <= 0:
-        return 3
-    return max(0, min(8, 2 - math.floor(math.log10(rse))))
-
-
 @router.get("/units/{serial}")
 def unit_page(
     request: Request,
@@ -412,6 +411,7 @@ def add_calibration(
         record = service.run_calibration(
             session, unit, calibration_from_form(form), recorded_by=user.name
         )
+        recompute_flags(session, unit.sensor_type)
     except Invalid as exc:
         session.rollback()
         unit = get_unit(session, serial)

@@ -15,6 +15,7 @@ from server.calibrations.models import SessionKind
 from server.calibrations.schemas import CalibrationCreate, CalibrationRead, CurrentCalibrationRead
 from server.db import SessionDep
 from server.errors import Invalid
+from server.flags.service import recompute_flags
 from server.fleet.service import get_unit
 
 router = APIRouter(prefix="/api/v1", tags=["calibrations"])
@@ -27,6 +28,7 @@ def create_calibration(
     """Store a calibration session, fit it server-side and judge it against the tolerance."""
     unit = get_unit(session, serial)
     record = service.run_calibration(session, unit, data, recorded_by=user.name)
+    recompute_flags(session, unit.sensor_type)
     session.commit()
     return service.calibration_read(record)
 

@@ -12,6 +12,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse
 from server.accounts.deps import PageViewer
 from server.db import SessionDep
 from server.errors import Invalid
+from server.flags.service import ABBREVIATIONS, TITLES, open_kinds_by_unit
 from server.fleet import service
 from server.fleet.models import UnitStatus
 from server.htmx import render
@@ -72,6 +73,8 @@ def fleet(
     units, total = service.list_units(
         session, page, sensor_type=sensor_type or None, status=_status(status), q=q
     )
+    serial_of = {u.id: u.serial for u in units}
+    ids = list(serial_of)
     first = page.offset + 1 if units else 0
     last = page.offset + len(units)
     last_page = max(1, -(-total // page.per_page))
@@ -81,6 +84,9 @@ def fleet(
         "fleet/page.html",
         block="results",
         rows=[service.unit_read(u) for u in units],
+        flags={serial_of[uid]: found for uid, found in open_kinds_by_unit(session, ids).items()},
+        flag_abbreviations=ABBREVIATIONS,
+        flag_titles=TITLES,
         total=total,
         first=first,
         last=last,

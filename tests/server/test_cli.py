@@ -334,3 +334,86 @@ def test_fit_is_a_row_of_the_command_table(capsys) -> None:
     assert ("fit",) in [c.path for c in cli.COMMANDS]
     code, out, _ = run(capsys, "--help")
     assert code == 0 and re.search(r"^\s+fit\s+fit points from a CSV file", out, re.M)
+
+
+# -- export ---------------------------------------------------------------------------------------
+
+
+@pytest.fixture
+def seeded_url(db_url: str) -> str:
+    """The browser suite's small fleet (IR rangefinders 0..4095 counts, a pot 0..1023 counts)."""
+    from tests.web.seed import seed
+
+    seed(db_url)
+    return db_url
+
+
+def test_export_csv_has_the_header_and_a_row_per_step(capsys, seeded_url) -> None:
+    code, out, err = run(capsys, "export", "POT-0001", "--format", "csv", "--db", seeded_url)
+    assert (code, err) == (0, ""), err
+    lines = out.rstrip("\n").split("\n")
+    assert lines[0] == "reading [counts],value [deg],expanded uncertainty [deg] (k = 2),status"
+    assert len(lines) == 1 + 1024  # codes 0..1023
+    code, out, _ = run(
+        capsys, "export", "POT-0001", "--format", "csv", "--step", "10", "--db", seeded_url
+    )
+    assert code == 0 and len(out.rstrip("\n").split("\n")) == 1 + 103  # 0, 10, ..., 1020
+
+
+def test_export_json_to_a_file(capsys, seeded_url, tmp_path) -> None:
+    target = tmp_path / "table.json"
+    code, out, err = run(
+        capsys, "export", "IR-0001", "--format", "json", "--output", str(target),
+        "--db", seeded_url,
+    )  # fmt: skip
+    assert code == 0 and out == "" and str(target) in err
+    doc = json.loads(target.read_text())
+    assert doc["reading_unit"] == "counts" and len(doc["rows"]) == 4096
+
+
+def test_export_c_compiles_with_gcc(capsys, sqlite_url, tmp_path) -> None:
+    import shutil
+    import subprocess
+
+    from tests.conftest import missing
+    from tests.web.seed import seed
+
+    gcc = shutil.which("gcc")
+    if gcc is None:
+        missing("gcc is not installed")
+    seed(sqlite_url)
+    for serial in ("IR-0001", "POT-0001"):
+        code, out, err = run(capsys, "export", serial, "--format", "c", "--db", sqlite_url)
+        assert (code, err) == (0, ""), err
+        header = tmp_path / f"{serial}.h"
+        header.write_text(out)
+        name = serial.lower().replace("-", "_")
+        assert f"static inline int32_t {name}_lut_milli(int32_t reading)" in out
+        source = tmp_path / f"{name}.c"
+        source.write_text(
+            f'#include "{header.name}"\n'
+            f"int32_t probe_{name}(int32_t r) {{ return {name}_lut_milli(r); }}\n"
+        )
+        compiled = subprocess.run(
+            [gcc, "-std=c99", "-Wall", "-Wextra", "-Werror", "-c", str(source),
+             "-o", str(tmp_path / f"{name}.o")],
+            capture_output=True, text=True, cwd=tmp_path,
+        )  # fmt: skip
+        assert compiled.returncode == 0, compiled.stderr
+
+
+def test_export_mistakes_say_error_and_exit_2(capsys, sqlite_url) -> None:
+    from tests.web.seed import seed
+
+    seed(sqlite_url)
+    code, out, err = run(capsys, "export", "IR-0003", "--format", "csv", "--db", sqlite_url)
+    assert code == 2 and out == ""
+    assert err.startswith("error: unit 'IR-0003' has no current calibration")
+    code, _, err = run(capsys, "export", "NOPE-1", "--format", "csv", "--db", sqlite_url)
+    assert code == 2 and err == "error: unit 'NOPE-1' not found\n"
+    code, _, err = run(capsys, "export", "IR-0001", "--format", "xml", "--db", sqlite_url)
+    assert code == 2 and "invalid choice" in err
+    code, _, err = run(
+        capsys, "export", "IR-0001", "--format", "csv", "--step", "0", "--db", sqlite_url
+    )
+    assert code == 2 and "at least 1" in err

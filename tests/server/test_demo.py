@@ -250,3 +250,27 @@ def test_noise_in_the_reading_type_b_inputs_and_the_ranking(demo: Demo) -> None:
             assert [c["family"] for c in ranking["candidates"]] == ["polynomial", "line"]
             assert ranking["recommended"] == "polynomial(degree=2)"
     assert set(demo.summary.failed_serials) == {QUARANTINED_SERIAL, NOISY_SERIAL}
+
+
+def test_the_demo_raises_the_flags_its_story_promises(demo: Demo) -> None:
+    """load_demo recomputes flags: the drifted unit has a drift flag (and an out-of-tolerance-
+    in-service flag naming its kit), the odd unit a fleet_outlier action flag, and no other unit
+    has either."""
+    from server.flags.models import Flag
+
+    found = [
+        (f.unit.serial, f.kind.value, f.severity.value, f)
+        for f in demo.session.scalars(
+            select(Flag).options(selectinload(Flag.unit)).where(Flag.open.is_(True))
+        )
+    ]
+    drift = [(s, sev) for s, k, sev, _ in found if k == "drift"]
+    assert drift == [(DRIFTED_SERIAL, "action")]
+    outliers = [(s, sev) for s, k, sev, _ in found if k == "fleet_outlier"]
+    assert (ODD_SERIAL, "action") in outliers
+    assert [s for s, sev in outliers if sev == "action"] == [ODD_SERIAL]
+    [oot] = [f for s, k, _, f in found if k == "out_of_tolerance_in_service"]
+    assert oot.unit.serial == DRIFTED_SERIAL
+    assert [p["location"] for p in oot.evidence["installations"]] == ["kit 02 / left bumper"]
+    failed = {s for s, k, _, _ in found if k == "failed_acceptance"}
+    assert QUARANTINED_SERIAL in failed and NOISY_SERIAL in failed

@@ -217,3 +217,113 @@ def test_failing_unit_shows_suspects_and_model_choice(
     page.screenshot(path=artifacts / "unit-failing.png", full_page=True)
     page.goto(f"/units/{fleet.pot}")
     page.locator("#model-choice").screenshot(path=artifacts / "unit-model-choice.png")
+
+
+def pdf_text(data: bytes) -> tuple[int, str]:
+    """Pages and text of a PDF (pypdf, in the [test] extra)."""
+    import io
+
+    from pypdf import PdfReader
+
+    reader = PdfReader(io.BytesIO(data))
+    return len(reader.pages), "\n".join(p.extract_text() or "" for p in reader.pages)
+
+
+def test_report_prints_to_pdf_on_a4_and_letter(
+    page: Any, server: str, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    _, fleet = live_db
+    page.goto(f"/units/{fleet.calibrated}")
+    page.locator("#history tbody tr.current a.report-link").click()
+    page.wait_for_url(re.compile(rf"/units/{fleet.calibrated}/calibrations/\d+/report$"))
+    page.wait_for_selector("#report-plot.js-plotly-plot .main-svg")
+    assert page.locator("#report-plot .scatterlayer .trace").count() >= 3
+    assert page.locator(".modebar").count() == 0  # static: no mode bar
+    page.screenshot(path=artifacts / "report.png", full_page=True)
+    page.emulate_media(media="print")
+    page.set_viewport_size({"width": 680, "height": 960})  # A4's printable width at 96 px/in
+    page.screenshot(path=artifacts / "report-print-media.png", full_page=True)
+    # the plot fits the printable width of both papers (A4 180 mm, Letter 190 mm of 96 px/in)
+    width = page.evaluate(
+        "document.querySelector('#report-plot .main-svg').getBoundingClientRect().width"
+    )
+    assert width <= 180 / 25.4 * 96
+    for paper in ("A4", "Letter"):
+        data = page.pdf(format=paper, print_background=True)
+        (artifacts / f"report-{paper.lower()}.pdf").write_bytes(data)
+        assert data.startswith(b"%PDF")
+        pages, text = pdf_text(data)
+        flat = " ".join(text.split())
+        assert 1 <= pages <= 4, pages
+        assert fleet.calibrated in flat
+        assert "PASS" in flat
+        assert "do not on their own make a calibration accredited or traceable" in flat
+        assert "Sign out" not in flat and "scan or type a serial" not in flat
+
+
+def test_needs_attention_shows_a_drift_flag_and_takes_an_acknowledgement(
+    page: Any, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    """The spare unit gets an old calibration and a new one 20 mm off (drift limit 5 mm): its
+    drift flag is listed with its numbers and plot, and a technician acknowledges it in place."""
+    from datetime import UTC, datetime, timedelta
+
+    from server.calibrations import service as calibrations
+    from server.calibrations.models import SessionKind
+    from server.calibrations.schemas import CalibrationCreate, PointIn
+    from server.db import make_sessionmaker
+    from server.flags.service import recompute_flags
+    from server.fleet.service import get_unit
+
+    url, fleet = live_db
+    engine = make_engine(url)
+    now = datetime.now(UTC).replace(microsecond=0)
+    with make_sessionmaker(engine)() as session:
+        unit = get_unit(session, fleet.spare)
+        for days, v0, seed in ((120, 15, 31), (2, 35, 32)):
+            calibrations.run_calibration(
+                session,
+                unit,
+                CalibrationCreate(
+                    performed_at=now - timedelta(days=days),
+                    operator=TECHNICIAN[0],
+                    reference="distance jig DJ-2",
+                    kind=SessionKind.periodic,
+                    points=[
+                        PointIn(reference_value=v, reading=r)
+                        for v, r in ir_readings(200_000, 30, v0, seed=seed)
+                    ],
+                ),
+                recorded_by=TECHNICIAN[0],
+            )
+        recompute_flags(session, get_unit(session, fleet.spare).sensor_type)
+        session.commit()
+    engine.dispose()
+
+    page.goto("/")
+    nav = page.locator(".topbar nav a[href='/attention']")
+    assert int(nav.locator(".nav-count").inner_text()) >= 1
+    row = page.locator("table.units tbody tr", has_text=fleet.spare)
+    assert row.locator("td.flags .flag-abbr", has_text="DRIFT").count() == 1
+    nav.click()
+    page.wait_for_url(re.compile(r"/attention$"))
+    card = page.locator("#kind-drift .flag-card", has_text=fleet.spare)
+    assert card.count() == 1
+    card.locator(".flag-plot.js-plotly-plot .main-svg").first.wait_for()
+    assert card.locator(".flag-plot .scatterlayer .trace").count() >= 3  # band, deviation, limit
+    evidence = card.locator(".evidence").inner_text()
+    assert "Drift limit" in evidence and "±5 mm" in evidence and "Simultaneous z" in evidence
+    assert "mm" in card.locator(".flag-message").inner_text()
+    page.screenshot(path=artifacts / "attention.png", full_page=True)
+
+    waiting = int(nav.locator(".nav-count").inner_text())
+    page.evaluate("window.__same_document = true")
+    card.locator("input[name=note]").fill("pulled from rover R2; recalibrate before reuse")
+    card.locator("button", has_text="Acknowledge").click()
+    done = page.locator("#kind-drift .flag-card.acknowledged", has_text=fleet.spare)
+    done.wait_for()
+    text = done.locator(".acknowledgement").inner_text()
+    assert TECHNICIAN[0] in text and "pulled from rover R2" in text
+    assert page.evaluate("window.__same_document") is True  # swapped in place by htmx
+    assert int(nav.locator(".nav-count").inner_text()) == waiting - 1  # the nav follows
+    page.screenshot(path=artifacts / "attention-acknowledged.png", full_page=True)

@@ -542,3 +542,96 @@ def test_a_calibration_stored_before_rankings_shows_what_it_can(client: TestClie
     assert page.status_code == 200
     assert "stored before model ranking was kept; only inverse_offset was fitted" in page.text
     assert "1 suspect point</strong>" in page.text  # diagnostics computed from the stored fit
+
+
+# ---- exports and the printable report -----------------------------------------------------------
+
+DOWNLOADS = [
+    ("table.csv", "text/csv", "-table.csv"),
+    ("table.json", "application/json", "-table.json"),
+    ("firmware.h", "text/x-c", ".h"),
+]
+
+
+@pytest.mark.parametrize(
+    "path",
+    [f"/units/{FLEET.calibrated}/{name}" for name, _, _ in DOWNLOADS]
+    + [f"/units/{FLEET.calibrated}/calibrations/1/report"],
+)
+def test_downloads_and_reports_need_sign_in(anonymous: TestClient, path: str) -> None:
+    answer = anonymous.get(path, follow_redirects=False)
+    assert answer.status_code == 303
+    assert answer.headers["location"] == f"/signin?next={path}"
+
+
+@pytest.mark.parametrize(("name", "media_type", "suffix"), DOWNLOADS)
+def test_downloads_have_their_type_and_file_name(
+    viewer: TestClient, name: str, media_type: str, suffix: str
+) -> None:
+    answer = viewer.get(f"/units/{FLEET.calibrated}/{name}")
+    assert answer.status_code == 200, answer.text
+    assert answer.headers["content-type"].startswith(media_type)
+    disposition = f'attachment; filename="{FLEET.calibrated}{suffix}"'
+    assert answer.headers["content-disposition"] == disposition
+
+
+def test_download_of_an_uncalibrated_unit_is_a_404_page(client: TestClient) -> None:
+    answer = client.get(f"/units/{FLEET.fresh}/table.csv")
+    assert answer.status_code == 404
+    assert "has no current calibration" in unescape(answer.text)
+
+
+def test_unit_page_offers_downloads_and_reports(client: TestClient, app) -> None:
+    page = client.get(f"/units/{FLEET.calibrated}").text
+    for name, _, _ in DOWNLOADS:
+        assert f'href="/units/{FLEET.calibrated}/{name}"' in page
+    ids = [s.id for s in sessions_of(app, FLEET.calibrated)]
+    for session_id in ids:
+        assert f'href="/units/{FLEET.calibrated}/calibrations/{session_id}/report"' in page
+    assert "header-unavailable" not in page
+
+
+def test_firmware_button_explains_a_non_integer_span(client: TestClient, app) -> None:
+    from server.fleet.models import SensorType
+
+    with app.state.sessionmaker() as session:
+        session.execute(
+            update(SensorType)
+            .where(SensorType.name == "Rotary pot 270 deg")
+            .values(reading_max=2.2)
+        )
+        session.commit()
+    page = unescape(client.get(f"/units/{FLEET.pot}").text)
+    assert f'href="/units/{FLEET.pot}/firmware.h"' not in page
+    assert "No firmware header: a firmware header converts integer reading codes" in page
+    refused = client.get(f"/units/{FLEET.pot}/firmware.h")
+    assert refused.status_code == 422 and "not whole codes" in unescape(refused.text)
+
+
+def test_report_shows_the_session_and_the_cautions(client: TestClient, app) -> None:
+    session_id = max(s.id for s in sessions_of(app, FLEET.calibrated))
+    answer = client.get(f"/units/{FLEET.calibrated}/calibrations/{session_id}/report")
+    assert answer.status_code == 200
+    page = unescape(answer.text)
+    for text in (
+        FLEET.calibrated,
+        "IR rangefinder 10-80 cm",
+        "distance jig DJ-2 (cert. 2025-117)",
+        "U = 0.3 mm, k = 2",
+        "Decision: PASS",
+        "Rule.",
+        "inverse_offset",
+        "Uncertainty budget at mid-range",
+        "no: ",  # the two fold-back points are excluded, with their reason
+        "do not on their own make a calibration accredited or",
+        'data-static="yes"',
+    ):
+        assert text in page, text
+    assert '<footer class="caution">' not in page  # the cautions are in the report itself
+
+
+def test_report_of_another_units_session_is_404(client: TestClient, app) -> None:
+    other = sessions_of(app, FLEET.pot)[0].id
+    assert client.get(f"/units/{FLEET.calibrated}/calibrations/{other}/report").status_code == 404
+    assert client.get(f"/units/{FLEET.calibrated}/calibrations/9999/report").status_code == 404
+    assert client.get(f"/units/{FLEET.pot}/calibrations/{other}/report").status_code == 200

@@ -9,6 +9,7 @@
     modeBarButtonsToRemove: ["select2d", "lasso2d", "autoScale2d", "toggleSpikelines"],
     toImageButtonOptions: { format: "png", scale: 2 },
   };
+  const STATIC_CONFIG = { staticPlot: true, responsive: false, displaylogo: false };
 
   // Every element with data-figure (a plotly figure as JSON) is drawn once.
   function drawFigures(root) {
@@ -20,7 +21,9 @@
       if (el.dataset.drawn === "yes") continue;
       try {
         const figure = JSON.parse(el.dataset.figure);
-        Plotly.newPlot(el, figure.data, figure.layout, PLOT_CONFIG);
+        // data-static="yes": a printable plot (no hover, no mode bar, fixed size from the layout)
+        const config = el.dataset.static === "yes" ? STATIC_CONFIG : PLOT_CONFIG;
+        Plotly.newPlot(el, figure.data, figure.layout, config);
         el.dataset.drawn = "yes";
       } catch (err) {
         el.textContent = "This plot could not be drawn: " + err;

@@ -1,0 +1,674 @@
+"""Flags a shop acts on, recomputed per sensor type; installation events of a unit.
+
+``recompute_flags`` judges every unit of a type from its stored calibrations (nothing is refitted)
+and its installation events:
+
+- ``failed_acceptance``: the current calibration failed acceptance (action).
+- ``drift``: ``shared.drift.compare`` of the last two valid calibrations with the type's drift
+  limit says drifted (action). The evidence keeps a compact grid of the deviation and the
+  simultaneous band for the plot.
+- ``out_of_tolerance_in_service``: ``shared.drift.as_found``, the previous fit applied to the
+  newest session's points with the type's tolerance, has a point out (action); the evidence names
+  the installations that overlapped the time between the two calibrations.
+- ``fleet_outlier``: ``shared.fleet.fleet_outliers`` over the current fits of the type: the
+  engine's action signal (|z| >= 3) is ``action``, its warning signal (2 < |z| < 3) ``warning``.
+- ``overdue``: the due date (last calibration + the type's interval, as on the fleet page) has
+  passed: ``warning`` for the first 30 days, ``action`` after.
+
+Each flag has a ``key`` naming its condition (kind, unit, and the calibrations it is about), so a
+recomputation that finds the same condition keeps the row, its ``raised_at`` and its
+acknowledgement and only refreshes the numbers; a condition that no longer holds is closed
+(``open`` false, ``closed_at``), never deleted. ``open`` means "the condition holds";
+acknowledging is separate and does not close a flag. Retired units get no flags.
+
+Services flush, never commit.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from datetime import date, datetime, timedelta
+from typing import Any
+
+import numpy as np
+from sqlalchemy import Select, func, select
+from sqlalchemy.orm import Session, object_session, selectinload
+
+import shared
+from server.calibrations.models import CalibrationSession
+from server.db import utcnow
+from server.errors import Conflict, Invalid, NotFound
+from server.flags.models import EventKind, Flag, FlagKind, InstallationEvent, Severity
+from server.flags.schemas import EventCreate, EventRead, FlagRead
+from server.fleet.models import SensorType, Unit, UnitStatus
+from server.pagination import PageParams
+from shared.drift import as_found, compare
+from shared.fleet import fleet_outliers
+
+PLOT_POINTS = 41  # readings kept in a drift flag's evidence for its plot
+OVERDUE_ACTION_DAYS = 30  # overdue longer than this is an action, before it a warning
+ABBREVIATIONS = {  # the fleet page's badges
+    FlagKind.drift: "DRIFT",
+    FlagKind.out_of_tolerance_in_service: "OOT",
+    FlagKind.fleet_outlier: "ODD",
+    FlagKind.failed_acceptance: "FAIL",
+    FlagKind.overdue: "DUE",
+}
+TITLES = {
+    FlagKind.drift: "Drifted between calibrations",
+    FlagKind.out_of_tolerance_in_service: "Out of tolerance while in service",
+    FlagKind.fleet_outlier: "Reads unlike its siblings",
+    FlagKind.failed_acceptance: "Failed acceptance",
+    FlagKind.overdue: "Overdue for recalibration",
+}
+
+
+@dataclass(frozen=True, slots=True)
+class Found:
+    """A condition found by a recomputation, before it is stored."""
+
+    unit: Unit
+    kind: FlagKind
+    severity: Severity
+    key: str
+    message: str
+    evidence: dict[str, Any]
+
+
+def _clean(x: Any) -> Any:
+    """JSON-safe: numpy scalars to Python, non-finite floats to None (PostgreSQL's JSON has no
+    NaN), recursively."""
+    if isinstance(x, dict):
+        return {str(k): _clean(v) for k, v in x.items()}
+    if isinstance(x, list | tuple):
+        return [_clean(v) for v in x]
+    if isinstance(x, np.ndarray):
+        return [_clean(v) for v in x.tolist()]
+    if isinstance(x, np.bool_ | bool):
+        return bool(x)
+    if isinstance(x, np.integer):
+        return int(x)
+    if isinstance(x, float | np.floating):
+        return float(x) if math.isfinite(x) else None
+    if isinstance(x, datetime | date):
+        return x.isoformat()
+    return x
+
+
+def _g(x: float, digits: int = 3) -> str:
+    return f"{x:.{digits}g}"
+
+
+def _valid_sessions(unit: Unit) -> list[CalibrationSession]:
+    """Sessions that count: not voided, with a current fit; oldest first."""
+    valid = [s for s in unit.sessions if s.voided_at is None and s.current_fit is not None]
+    return sorted(valid, key=lambda s: (s.performed_at, s.id))
+
+
+def _fit(record: CalibrationSession) -> shared.Fit:
+    stored = record.current_fit
+    assert stored is not None  # _valid_sessions keeps only sessions with one
+    return shared.Fit.from_dict(stored.result)
+
+
+def _compact(values: Any, n: int = PLOT_POINTS) -> list[float]:
+    arr = np.asarray(values, dtype=float)
+    if arr.size <= n:
+        return [float(v) for v in arr]
+    idx = np.unique(np.linspace(0, arr.size - 1, n).round().astype(int))
+    return [float(v) for v in arr[idx]]
+
+
+# -- installations ---------------------------------------------------------------------------------
+
+
+def list_events(session: Session, unit: Unit) -> list[InstallationEvent]:
+    """The unit's installation events, oldest first."""
+    return list(
+        session.scalars(
+            select(InstallationEvent)
+            .where(InstallationEvent.unit_id == unit.id)
+            .order_by(InstallationEvent.at, InstallationEvent.id)
+        )
+    )
+
+
+def create_event(
+    session: Session, unit: Unit, data: EventCreate, recorded_by: str | None
+) -> InstallationEvent:
+    """Record an installation or a removal and keep the unit's status and installed-in in step."""
+    location = (data.location or "").strip() or None
+    events = list_events(session, unit)
+    if events and data.at < events[-1].at:
+        raise Invalid(
+            f"the unit's last event ({events[-1].kind.value} on {events[-1].at:%Y-%m-%d %H:%M} "
+            "UTC) is later; events are recorded in order",
+            field="at",
+        )
+    if data.kind is EventKind.installed:
+        if location is None:
+            raise Invalid("say where the unit is installed", field="location")
+        if unit.status is UnitStatus.installed:
+            raise Invalid(
+                f"{unit.serial} is already installed in {unit.installed_in or 'an instrument'}; "
+                "record its removal first",
+                field="kind",
+            )
+        if unit.status in (UnitStatus.quarantined, UnitStatus.retired):
+            raise Invalid(
+                f"{unit.serial} is {unit.status.value}; it cannot be installed", field="kind"
+            )
+    elif unit.status is not UnitStatus.installed:
+        raise Invalid(
+            f"{unit.serial} is not installed (status {unit.status.value.replace('_', ' ')}); "
+            "there is nothing to remove it from",
+            field="kind",
+        )
+    if data.kind is EventKind.removed:
+        location = location or unit.installed_in
+    event = InstallationEvent(
+        unit=unit,
+        kind=data.kind,
+        location=location,
+        at=data.at,
+        recorded_by=recorded_by,
+        note=(data.note or "").strip() or None,
+    )
+    if data.kind is EventKind.installed:
+        unit.status, unit.installed_in = UnitStatus.installed, location
+    else:
+        unit.status, unit.installed_in = UnitStatus.in_stock, None
+    session.add(event)
+    session.flush()
+    return event
+
+
+def event_read(event: InstallationEvent) -> EventRead:
+    return EventRead(
+        id=event.id,
+        unit=event.unit.serial,
+        kind=event.kind,
+        location=event.location,
+        at=event.at,
+        recorded_by=event.recorded_by,
+        note=event.note,
+    )
+
+
+def installations_between(
+    unit: Unit, events: list[InstallationEvent], start: datetime, end: datetime
+) -> list[dict[str, Any]]:
+    """Where the unit was installed between ``start`` and ``end``: one entry per stint that
+    overlaps the interval, {location, from, to} (ISO datetimes; None for an open end). Without any
+    recorded event, the unit record's installed-in (if any) is given, marked as such."""
+    if not events:
+        if unit.installed_in:
+            return [
+                {
+                    "location": unit.installed_in,
+                    "from": None,
+                    "to": None,
+                    "source": "from the unit record; no installation events recorded",
+                }
+            ]
+        return []
+    stints: list[dict[str, Any]] = []
+    where: str | None = None
+    since: datetime | None = None
+    for e in sorted(events, key=lambda e: (e.at, e.id)):
+        if e.kind is EventKind.installed:
+            where, since = e.location, e.at
+        elif where is not None:
+            stints.append({"location": where, "from": since, "to": e.at})
+            where, since = None, None
+    if where is not None:
+        stints.append({"location": where, "from": since, "to": None})
+    overlapping = [
+        s
+        for s in stints
+        if (s["from"] is None or s["from"] < end) and (s["to"] is None or s["to"] > start)
+    ]
+    return [
+        {
+            "location": s["location"],
+            "from": s["from"].isoformat() if s["from"] else None,
+            "to": s["to"].isoformat() if s["to"] else None,
+            "source": "installation events",
+        }
+        for s in overlapping
+    ]
+
+
+# -- the conditions --------------------------------------------------------------------------------
+
+
+def _failed(unit: Unit, last: CalibrationSession, vu: str) -> Found | None:
+    stored = last.current_fit
+    if stored is None or stored.passed:
+        return None
+    d = stored.decision
+    worst, allowed = d.get("worst_error"), d.get("allowed_at_worst")
+    reasons = [str(r) for r in d.get("reasons") or []]
+    detail = f": {'; '.join(reasons)}" if reasons else ""
+    if not reasons and isinstance(worst, int | float) and isinstance(allowed, int | float):
+        detail += f" (worst error {_g(worst)} {vu}, allowed ±{_g(allowed)} {vu})"
+    return Found(
+        unit=unit,
+        kind=FlagKind.failed_acceptance,
+        severity=Severity.action,
+        key=f"failed_acceptance:{unit.id}:{last.id}",
+        message=f"current calibration of {last.performed_at:%Y-%m-%d} failed acceptance{detail}",
+        evidence=_clean(
+            {
+                "session_id": last.id,
+                "performed_at": last.performed_at,
+                "worst_error": worst,
+                "worst_error_at": d.get("worst_error_at"),
+                "allowed_at_worst": allowed,
+                "tur_achieved": d.get("tur_achieved"),
+                "tur_required": d.get("tur_required"),
+                "reasons": d.get("reasons", []),
+                "rule": d.get("rule"),
+                "value_unit": vu,
+            }
+        ),
+    )
+
+
+def _drift(
+    unit: Unit, prev: CalibrationSession, cur: CalibrationSession, st: SensorType
+) -> Found | None:
+    vu, ru = st.value_unit, st.reading_unit
+    try:
+        found = compare(_fit(prev), _fit(cur), drift_limit=st.drift_limit_abs, unit=vu)
+    except shared.CalibrationError:
+        return None  # ranges do not overlap: nothing to compare
+    if not found.drifted:
+        return None
+    limit = f"limit {_g(found.drift_limit)} {vu}, " if found.drift_limit is not None else ""
+    message = (
+        f"drifted {found.max_deviation:+.3g} {vu} at {_g(found.at_reading, 4)} {ru} between "
+        f"{prev.performed_at:%Y-%m-%d} and {cur.performed_at:%Y-%m-%d} ({limit}"
+        f"En {found.en_at_max:.2g}, z {found.z_simultaneous:.3g} > critical {found.critical:.3g})"
+    )
+    return Found(
+        unit=unit,
+        kind=FlagKind.drift,
+        severity=Severity.action,
+        key=f"drift:{unit.id}:{prev.id}:{cur.id}",
+        message=message,
+        evidence=_clean(
+            {
+                "previous_session_id": prev.id,
+                "previous_at": prev.performed_at,
+                "current_session_id": cur.id,
+                "current_at": cur.performed_at,
+                "max_deviation": found.max_deviation,
+                "at_reading": found.at_reading,
+                "at_value": found.at_value,
+                "en_at_max": found.en_at_max,
+                "z_simultaneous": found.z_simultaneous,
+                "critical": found.critical,
+                "level": found.level,
+                "drift_limit": found.drift_limit,
+                "common_range": list(found.common_range),
+                "rule": found.rule,
+                "value_unit": vu,
+                "reading_unit": ru,
+                "grid": {
+                    "reading": _compact(found.reading),
+                    "deviation": _compact(found.deviation),
+                    "band": _compact(found.band),
+                },
+            }
+        ),
+    )
+
+
+def _out_in_service(
+    unit: Unit,
+    prev: CalibrationSession,
+    cur: CalibrationSession,
+    st: SensorType,
+    events: list[InstallationEvent],
+) -> Found | None:
+    if not (st.tolerance_abs or st.tolerance_rel):
+        return None
+    vu = st.value_unit
+    used = _fit(cur).used  # the points the new calibration used (not fold-back, not excluded)
+    points = [p for i, p in enumerate(cur.points) if i < len(used) and bool(used[i])]
+    try:
+        found = as_found(
+            _fit(prev),
+            [p.reading for p in points],
+            [p.reference_value for p in points],
+            st.tolerance_abs,
+            st.tolerance_rel,
+            unit=vu,
+        )
+    except shared.CalibrationError:
+        return None
+    if found.in_tolerance:
+        return None
+    places = installations_between(unit, events, prev.performed_at, cur.performed_at)
+    where = (
+        "installed in " + " and ".join(str(p["location"]) for p in places)
+        if places
+        else "no installation recorded"
+    )
+    message = (
+        f"as found {cur.performed_at:%Y-%m-%d}, the calibration of "
+        f"{prev.performed_at:%Y-%m-%d} was out of tolerance at {found.n_out} of "
+        f"{found.n_judged} points, worst {found.worst_error:+.3g} {vu} at "
+        f"{_g(found.worst_at_value, 4)} {vu} (allowed ±{_g(found.allowed_at_worst)} {vu}); "
+        f"{where} in between"
+    )
+    return Found(
+        unit=unit,
+        kind=FlagKind.out_of_tolerance_in_service,
+        severity=Severity.action,
+        key=f"out_of_tolerance_in_service:{unit.id}:{prev.id}:{cur.id}",
+        message=message,
+        evidence=_clean(
+            {
+                "previous_session_id": prev.id,
+                "previous_at": prev.performed_at,
+                "current_session_id": cur.id,
+                "current_at": cur.performed_at,
+                "n_judged": found.n_judged,
+                "n_out": found.n_out,
+                "worst_error": found.worst_error,
+                "worst_at_reading": found.worst_at_reading,
+                "worst_at_value": found.worst_at_value,
+                "allowed_at_worst": found.allowed_at_worst,
+                "installations": places,
+                "rule": found.rule,
+                "value_unit": vu,
+                "reading_unit": st.reading_unit,
+            }
+        ),
+    )
+
+
+def _overdue(unit: Unit, last: CalibrationSession, st: SensorType, today: date) -> Found | None:
+    if unit.status in (UnitStatus.retired, UnitStatus.quarantined):
+        return None
+    due = last.performed_at.date() + timedelta(days=st.interval_days)
+    if due >= today:
+        return None
+    late = (today - due).days
+    return Found(
+        unit=unit,
+        kind=FlagKind.overdue,
+        severity=Severity.action if late > OVERDUE_ACTION_DAYS else Severity.warning,
+        key=f"overdue:{unit.id}:{last.id}",
+        message=(
+            f"due {due.isoformat()}, {late} day{'s' if late != 1 else ''} overdue "
+            f"(last calibrated {last.performed_at:%Y-%m-%d}, interval {st.interval_days} days)"
+        ),
+        evidence=_clean(
+            {
+                "due": due,
+                "days_overdue": late,
+                "last_calibrated": last.performed_at,
+                "interval_days": st.interval_days,
+                "basis": f"last calibration + the type's interval ({st.interval_days} days)",
+            }
+        ),
+    )
+
+
+def _outliers(current: dict[str, tuple[Unit, CalibrationSession]], st: SensorType) -> list[Found]:
+    if len(current) < 2:
+        return []
+    fits = {serial: _fit(record) for serial, (_, record) in current.items()}
+    try:
+        result = fleet_outliers(fits)
+    except shared.CalibrationError:
+        return []
+    out = []
+    for serial, score in result.units.items():
+        if score.level not in ("action", "warning"):
+            continue
+        unit, record = current[serial]
+        j = int(np.argmin(np.abs(result.probe_readings - score.at_reading)))
+        centre = float(result.center[j])
+        out.append(
+            Found(
+                unit=unit,
+                kind=FlagKind.fleet_outlier,
+                severity=Severity.action if score.level == "action" else Severity.warning,
+                key=f"fleet_outlier:{unit.id}:{record.id}",
+                message=(
+                    f"reads unlike its {len(result.serials) - 1} siblings: robust z "
+                    f"{score.z_at_max:+.2f} at {_g(score.at_reading, 4)} {st.reading_unit} "
+                    f"({_g(score.value_at_max, 4)} {st.value_unit} against the median "
+                    f"{_g(centre, 4)} {st.value_unit})"
+                ),
+                evidence=_clean(
+                    {
+                        "session_id": record.id,
+                        "z": score.z_at_max,
+                        "at_reading": score.at_reading,
+                        "value": score.value_at_max,
+                        "center": centre,
+                        "scale": float(result.scale[j]),
+                        "units_compared": len(result.serials),
+                        "probe_readings": result.probe_readings,
+                        "rule": result.rule,
+                        "value_unit": st.value_unit,
+                        "reading_unit": st.reading_unit,
+                    }
+                ),
+            )
+        )
+    return out
+
+
+def _units_of(session: Session, sensor_type: SensorType) -> list[Unit]:
+    return list(
+        session.scalars(
+            select(Unit)
+            .where(Unit.sensor_type_id == sensor_type.id)
+            .options(
+                selectinload(Unit.sessions).selectinload(CalibrationSession.fits),
+                selectinload(Unit.sessions).selectinload(CalibrationSession.points),
+            )
+            .order_by(Unit.serial)
+        )
+    )
+
+
+def find_conditions(
+    session: Session, sensor_type: SensorType, today: date | None = None
+) -> list[Found]:
+    """Every condition that holds now for the units of ``sensor_type``."""
+    today = today or utcnow().date()
+    units = [u for u in _units_of(session, sensor_type) if u.status is not UnitStatus.retired]
+    events: dict[int, list[InstallationEvent]] = {u.id: [] for u in units}
+    if units:
+        for e in session.scalars(
+            select(InstallationEvent)
+            .where(InstallationEvent.unit_id.in_(events))
+            .order_by(InstallationEvent.at, InstallationEvent.id)
+        ):
+            events[e.unit_id].append(e)
+    found: list[Found] = []
+    current: dict[str, tuple[Unit, CalibrationSession]] = {}
+    for unit in units:
+        valid = _valid_sessions(unit)
+        if not valid:
+            continue
+        last = valid[-1]
+        current[unit.serial] = (unit, last)
+        for item in (
+            _failed(unit, last, sensor_type.value_unit),
+            _overdue(unit, last, sensor_type, today),
+        ):
+            if item is not None:
+                found.append(item)
+        if len(valid) >= 2:
+            prev = valid[-2]
+            for item in (
+                _drift(unit, prev, last, sensor_type),
+                _out_in_service(unit, prev, last, sensor_type, events[unit.id]),
+            ):
+                if item is not None:
+                    found.append(item)
+    found.extend(_outliers(current, sensor_type))
+    return found
+
+
+def recompute_flags(
+    session: Session, sensor_type: SensorType, *, today: date | None = None
+) -> list[Flag]:
+    """Raise, refresh and close the flags of every unit of ``sensor_type``; the open ones."""
+    now = utcnow()
+    found = {f.key: f for f in find_conditions(session, sensor_type, today)}
+    existing = {
+        f.key: f
+        for f in session.scalars(
+            select(Flag).join(Flag.unit).where(Unit.sensor_type_id == sensor_type.id)
+        )
+    }
+    for key, gone in existing.items():
+        if key not in found and gone.open:
+            gone.open, gone.closed_at = False, now
+    kept = []
+    for key, item in found.items():
+        flag = existing.get(key)
+        if flag is None:
+            flag = Flag(unit=item.unit, kind=item.kind, key=key, raised_at=now)
+            session.add(flag)
+        flag.severity, flag.message, flag.evidence = item.severity, item.message, item.evidence
+        flag.open, flag.closed_at = True, None
+        kept.append(flag)
+    session.flush()
+    return kept
+
+
+def recompute_all(session: Session, *, today: date | None = None) -> None:
+    """``recompute_flags`` for every sensor type."""
+    for sensor_type in session.scalars(select(SensorType).order_by(SensorType.name)):
+        recompute_flags(session, sensor_type, today=today)
+
+
+# -- reading and acknowledging ---------------------------------------------------------------------
+
+
+def _filtered(
+    kind: FlagKind | None,
+    sensor_type: str | None,
+    open_: bool | None,
+    acknowledged: bool | None,
+    unit: Unit | None = None,
+) -> Select[Any]:
+    query = select(Flag).join(Flag.unit)
+    if kind is not None:
+        query = query.where(Flag.kind == kind)
+    if sensor_type:
+        query = query.join(Unit.sensor_type).where(SensorType.name == sensor_type)
+    if open_ is not None:
+        query = query.where(Flag.open.is_(open_))
+    if acknowledged is not None:
+        query = query.where(
+            Flag.acknowledged_at.is_not(None) if acknowledged else Flag.acknowledged_at.is_(None)
+        )
+    if unit is not None:
+        query = query.where(Flag.unit_id == unit.id)
+    return query
+
+
+ORDER = (Flag.open.desc(), Flag.raised_at.desc(), Flag.id.desc())
+
+
+def list_flags(
+    session: Session,
+    page: PageParams,
+    *,
+    kind: FlagKind | None = None,
+    sensor_type: str | None = None,
+    open_: bool | None = None,
+    acknowledged: bool | None = None,
+) -> tuple[list[Flag], int]:
+    """Flags, open ones first, newest first within."""
+    query = _filtered(kind, sensor_type, open_, acknowledged)
+    total = session.scalar(select(func.count()).select_from(query.subquery())) or 0
+    flags = session.scalars(
+        query.options(selectinload(Flag.unit))
+        .order_by(*ORDER)
+        .offset(page.offset)
+        .limit(page.per_page)
+    )
+    return list(flags), total
+
+
+def flags_of(unit: Unit) -> list[Flag]:
+    """The unit's flags, open first."""
+    session = object_session(unit)
+    if session is None:
+        return []
+    return list(session.scalars(_filtered(None, None, None, None, unit).order_by(*ORDER)))
+
+
+def count_needing_attention(session: Session) -> int:
+    """Open flags nobody has acknowledged: the number beside "Needs attention"."""
+    query = _filtered(None, None, True, False)
+    return session.scalar(select(func.count()).select_from(query.subquery())) or 0
+
+
+def open_kinds_by_unit(session: Session, unit_ids: list[int]) -> dict[int, list[Flag]]:
+    """Open flags of these units, by unit id (the fleet page's badges)."""
+    out: dict[int, list[Flag]] = {}
+    if not unit_ids:
+        return out
+    for flag in session.scalars(
+        select(Flag)
+        .where(Flag.unit_id.in_(unit_ids), Flag.open.is_(True))
+        .order_by(Flag.kind, Flag.id)
+    ):
+        out.setdefault(flag.unit_id, []).append(flag)
+    return out
+
+
+def get_flag(session: Session, flag_id: int) -> Flag:
+    flag = session.get(Flag, flag_id)
+    if flag is None:
+        raise NotFound(f"flag {flag_id} not found")
+    return flag
+
+
+def acknowledge(session: Session, flag: Flag, note: str, who: str) -> Flag:
+    """Keep who acknowledged the flag, when, and their note; the flag stays as it is (open
+    while its condition holds)."""
+    text = note.strip()
+    if not text:
+        raise Invalid("say what was done or decided: a note is needed", field="note")
+    if flag.acknowledged_at is not None:
+        raise Conflict(
+            f"flag {flag.id} was acknowledged already by {flag.acknowledged_by} on "
+            f"{flag.acknowledged_at:%Y-%m-%d %H:%M} UTC",
+            field="note",
+        )
+    flag.acknowledged_by, flag.acknowledged_at, flag.acknowledged_note = who, utcnow(), text
+    session.flush()
+    return flag
+
+
+def flag_read(flag: Flag) -> FlagRead:
+    return FlagRead(
+        id=flag.id,
+        unit=flag.unit.serial,
+        kind=flag.kind,
+        severity=flag.severity,
+        message=flag.message,
+        detail=flag.message,
+        evidence=flag.evidence,
+        raised_at=flag.raised_at,
+        open=flag.open,
+        closed_at=flag.closed_at,
+        acknowledged_by=flag.acknowledged_by,
+        acknowledged_at=flag.acknowledged_at,
+        note=flag.acknowledged_note,
+    )

@@ -1,0 +1,137 @@
+"""Flag pages without a browser: "Needs attention", acknowledging without JavaScript, the unit
+page's flags and installation form, the fleet's badges."""
+
+from __future__ import annotations
+
+import re
+import shutil
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from fastapi.testclient import TestClient
+
+from server.app import create_app
+from server.config import Settings
+from server.flags.service import recompute_all
+from tests.web.seed import TECHNICIAN, VIEWER, Fleet, seed
+
+FLEET = Fleet()
+
+
+@pytest.fixture(scope="module")
+def seeded_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The seeded fleet with its flags computed (IR-0002: failed and overdue)."""
+    path = tmp_path_factory.mktemp("seeded") / "sensorledger.db"
+    url = f"sqlite:///{path}"
+    seed(url)
+    app = create_app(Settings(database_url=url))
+    with app.state.sessionmaker() as session:
+        recompute_all(session)
+        session.commit()
+    app.state.engine.dispose()
+    return path
+
+
+@pytest.fixture
+def app(seeded_file: Path, tmp_path: Path):
+    copy = tmp_path / "sensorledger.db"
+    shutil.copyfile(seeded_file, copy)
+    return create_app(Settings(database_url=f"sqlite:///{copy}"))
+
+
+def _signed_in(app, name: str, password: str) -> TestClient:
+    client = TestClient(app)
+    answer = client.post(
+        "/signin", data={"name": name, "password": password, "next": "/"}, follow_redirects=False
+    )
+    assert answer.status_code == 303
+    return client
+
+
+@pytest.fixture
+def client(app) -> Iterator[TestClient]:
+    with _signed_in(app, *TECHNICIAN) as c:
+        yield c
+
+
+@pytest.fixture
+def viewer(app) -> Iterator[TestClient]:
+    with _signed_in(app, *VIEWER) as c:
+        yield c
+
+
+def test_attention_lists_flags_by_kind_with_a_count_in_the_nav(client) -> None:
+    page = client.get("/attention")
+    assert page.status_code == 200
+    html = page.text
+    assert 'id="kind-failed_acceptance"' in html and 'id="kind-overdue"' in html
+    assert "IR-0002" in html and "days overdue" in html
+    assert re.search(r'<span id="nav-count" class="nav-count">\d+</span>', html)
+    fleet = client.get("/").text
+    assert 'class="flag-abbr flag-failed_acceptance' in fleet and ">FAIL</a>" in fleet
+    assert client.get("/attention?show=nope").status_code == 422
+
+
+def test_acknowledge_without_javascript(client) -> None:
+    html = client.get("/attention").text
+    flag_id = int(re.search(r'id="kind-overdue".*?id="flag-(\d+)"', html, re.S).group(1))
+    url = f"/attention/flags/{flag_id}/acknowledge"
+    empty = client.post(url, data={"note": "  "}, follow_redirects=False)
+    assert empty.status_code == 422
+    assert "a note is needed" in empty.text and 'aria-invalid="true"' in empty.text
+    done = client.post(url, data={"note": "on loan, back Monday"}, follow_redirects=False)
+    assert done.status_code == 303 and done.headers["location"] == f"/attention#flag-{flag_id}"
+    after = client.get("/attention").text
+    assert f"Acknowledged</strong> by {TECHNICIAN[0]}" in after
+    assert "on loan, back Monday" in after
+    again = client.post(url, data={"note": "x"}, headers={"HX-Request": "true"})
+    assert again.status_code == 409
+
+
+def test_acknowledge_with_htmx_swaps_the_groups_and_the_nav_count(client) -> None:
+    html = client.get("/attention").text
+    flag_id = int(re.search(r'id="kind-failed_acceptance".*?id="flag-(\d+)"', html, re.S).group(1))
+    url = f"/attention/flags/{flag_id}/acknowledge"
+    bad = client.post(url, data={"note": ""}, headers={"HX-Request": "true"})
+    assert bad.status_code == 422 and bad.text.lstrip().startswith('<div id="groups">')
+    assert "a note is needed" in bad.text
+    waiting = int(re.search(r"<strong>(\d+)</strong> open flag", bad.text).group(1))
+    ok = client.post(url, data={"note": "sent back"}, headers={"HX-Request": "true"})
+    assert ok.status_code == 200 and "<html" not in ok.text
+    assert "sent back" in ok.text
+    assert f"<strong>{waiting - 1}</strong> open flag" in ok.text  # the counts follow
+    assert re.search(rf'id="nav-count"[^>]*hx-swap-oob="true"[^>]*>{waiting - 1}<', ok.text)
+
+
+def test_viewer_sees_flags_but_cannot_acknowledge_or_install(viewer) -> None:
+    html = viewer.get("/attention").text
+    assert "IR-0002" in html and "Acknowledge with a note" not in html
+    flag_id = int(re.search(r'id="flag-(\d+)"', html).group(1))
+    answer = viewer.post(f"/attention/flags/{flag_id}/acknowledge", data={"note": "n"})
+    assert answer.status_code == 403
+    unit = viewer.get(f"/units/{FLEET.pot}").text
+    assert 'id="installations"' in unit and 'class="event-form"' not in unit
+
+
+def test_unit_page_flags_and_installations(client) -> None:
+    unit = client.get(f"/units/{FLEET.failing}").text
+    assert 'id="flags"' in unit and "Failed acceptance" in unit and "Overdue" in unit
+    url = f"/units/{FLEET.pot}/events"
+    missing = client.post(url, data={"kind": "installed", "location": "", "at": "2026-01-02T10:00"})
+    assert missing.status_code == 422 and "say where the unit is installed" in missing.text
+    assert 'id="event-location"' in missing.text
+    not_installed = client.post(
+        url, data={"kind": "removed", "at": "2026-01-02T10:00"}, headers={"HX-Request": "true"}
+    )
+    assert not_installed.status_code == 422 and "not installed" in not_installed.text
+    assert not_installed.text.lstrip().startswith("<section")
+    ok = client.post(
+        url,
+        data={"kind": "installed", "location": "arm A / elbow", "at": "2026-01-02T10:00"},
+        follow_redirects=False,
+    )
+    assert ok.status_code == 303 and ok.headers["location"].endswith("#installations")
+    page = client.get(f"/units/{FLEET.pot}").text
+    assert "arm A / elbow" in page and "2026-01-02 10:00 UTC" in page
+    assert '<option value="removed" selected>' in page  # next: remove it
