@@ -8,6 +8,7 @@ blocked and fails the test: nothing may leave the machine.
 from __future__ import annotations
 
 import os
+import shutil
 import socket
 import subprocess
 import sys
@@ -20,9 +21,12 @@ from typing import Any
 from urllib.parse import urlsplit
 
 import pytest
+from fastapi.testclient import TestClient
 
+from server.app import create_app
+from server.config import Settings
 from tests.conftest import missing
-from tests.web.seed import TECHNICIAN, Fleet, seed
+from tests.web.seed import TECHNICIAN, VIEWER, Fleet, seed
 
 ROOT = Path(__file__).resolve().parents[2]
 ARTIFACTS = ROOT / "tests" / "artifacts"
@@ -204,3 +208,33 @@ def artifacts() -> Path:
     """Where screenshots go (gitignored)."""
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
     return ARTIFACTS
+
+
+# -- page tests without a browser: each module provides ``seeded_file`` ------------------------
+@pytest.fixture
+def app(seeded_file: Path, tmp_path: Path):
+    """An app on a private copy of the module's seeded database file."""
+    copy = tmp_path / "sensorledger.db"
+    shutil.copyfile(seeded_file, copy)
+    return create_app(Settings(database_url=f"sqlite:///{copy}"))
+
+
+def signed_in_client(app, name: str, password: str) -> TestClient:
+    client = TestClient(app)
+    answer = client.post(
+        "/signin", data={"name": name, "password": password, "next": "/"}, follow_redirects=False
+    )
+    assert answer.status_code == 303
+    return client
+
+
+@pytest.fixture
+def client(app) -> Iterator[TestClient]:
+    with signed_in_client(app, *TECHNICIAN) as c:
+        yield c
+
+
+@pytest.fixture
+def viewer(app) -> Iterator[TestClient]:
+    with signed_in_client(app, *VIEWER) as c:
+        yield c

@@ -4,17 +4,14 @@ page's flags and installation form, the fleet's badges."""
 from __future__ import annotations
 
 import re
-import shutil
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from fastapi.testclient import TestClient
 
 from server.app import create_app
 from server.config import Settings
 from server.flags.service import recompute_all
-from tests.web.seed import TECHNICIAN, VIEWER, Fleet, seed
+from tests.web.seed import TECHNICIAN, Fleet, seed
 
 FLEET = Fleet()
 
@@ -31,34 +28,6 @@ def seeded_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
         session.commit()
     app.state.engine.dispose()
     return path
-
-
-@pytest.fixture
-def app(seeded_file: Path, tmp_path: Path):
-    copy = tmp_path / "sensorledger.db"
-    shutil.copyfile(seeded_file, copy)
-    return create_app(Settings(database_url=f"sqlite:///{copy}"))
-
-
-def _signed_in(app, name: str, password: str) -> TestClient:
-    client = TestClient(app)
-    answer = client.post(
-        "/signin", data={"name": name, "password": password, "next": "/"}, follow_redirects=False
-    )
-    assert answer.status_code == 303
-    return client
-
-
-@pytest.fixture
-def client(app) -> Iterator[TestClient]:
-    with _signed_in(app, *TECHNICIAN) as c:
-        yield c
-
-
-@pytest.fixture
-def viewer(app) -> Iterator[TestClient]:
-    with _signed_in(app, *VIEWER) as c:
-        yield c
 
 
 def test_attention_lists_flags_by_kind_with_a_count_in_the_nav(client) -> None:

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import re
-import shutil
 from collections.abc import Iterator
 from datetime import UTC, datetime
 from html import unescape
@@ -15,13 +14,11 @@ from fastapi.testclient import TestClient
 from sqlalchemy import select, update
 from sqlalchemy.orm import selectinload
 
-from server.app import create_app
 from server.calibrations.models import CalibrationSession, FitRecord
 from server.calibrations.pages import parse_points
-from server.config import Settings
 from server.errors import Invalid
 from server.fleet.models import Unit
-from tests.web.seed import TECHNICIAN, VIEWER, Fleet, ir_readings, paste_text, seed
+from tests.web.seed import Fleet, ir_readings, paste_text, seed
 
 FLEET = Fleet()
 
@@ -35,37 +32,9 @@ def seeded_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 @pytest.fixture
-def app(seeded_file: Path, tmp_path: Path):
-    copy = tmp_path / "sensorledger.db"
-    shutil.copyfile(seeded_file, copy)
-    return create_app(Settings(database_url=f"sqlite:///{copy}"))
-
-
-@pytest.fixture
 def anonymous(app) -> Iterator[TestClient]:
     with TestClient(app) as client:
         yield client
-
-
-def _signed_in(app, name: str, password: str) -> TestClient:
-    client = TestClient(app)
-    answer = client.post(
-        "/signin", data={"name": name, "password": password, "next": "/"}, follow_redirects=False
-    )
-    assert answer.status_code == 303
-    return client
-
-
-@pytest.fixture
-def client(app) -> Iterator[TestClient]:
-    with _signed_in(app, *TECHNICIAN) as c:
-        yield c
-
-
-@pytest.fixture
-def viewer(app) -> Iterator[TestClient]:
-    with _signed_in(app, *VIEWER) as c:
-        yield c
 
 
 def sessions_of(app, serial: str) -> list[CalibrationSession]:
