@@ -25,7 +25,7 @@ from server.flags.panels import unit_panels
 from server.flags.service import recompute_flags
 from server.fleet.models import SensorType, Unit
 from server.fleet.pages import unit_url
-from server.fleet.service import due_on, get_unit
+from server.fleet.service import due_basis, due_on, get_unit
 from server.formatting import residual_decimals
 from server.htmx import is_partial, render
 
@@ -228,6 +228,7 @@ def unit_context(
         "sensor_type": sensor_type,
         "current": current,
         "due": due_on(unit),
+        "due_basis": due_basis(unit),
         "today": datetime.now(UTC).date(),
         "form": form,
         "saved": saved,

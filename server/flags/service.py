@@ -12,8 +12,9 @@ and its installation events:
   the installations that overlapped the time between the two calibrations.
 - ``fleet_outlier``: ``shared.fleet.fleet_outliers`` over the current fits of the type: the
   engine's action signal (|z| >= 3) is ``action``, its warning signal (2 < |z| < 3) ``warning``.
-- ``overdue``: the due date (last calibration + the type's interval, as on the fleet page) has
-  passed: ``warning`` for the first 30 days, ``action`` after.
+- ``overdue``: the due date (``server.fleet.service.unit_due``: the interval adjusted by the
+  drift history, as on the fleet page; stored on the unit here) has passed: ``warning`` for the
+  first 30 days, ``action`` after. The evidence carries the due date's basis.
 
 Each flag has a ``key`` naming its condition (kind, unit, and the calibrations it is about), so a
 recomputation that finds the same condition keeps the row, its ``raised_at`` and its
@@ -28,7 +29,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from datetime import date, datetime, timedelta
+from datetime import date, datetime
 from typing import Any
 
 import numpy as np
@@ -42,6 +43,7 @@ from server.errors import Conflict, Invalid, NotFound
 from server.flags.models import EventKind, Flag, FlagKind, InstallationEvent, Severity
 from server.flags.schemas import EventCreate, EventRead, FlagRead
 from server.fleet.models import SensorType, Unit, UnitStatus
+from server.fleet.service import store_due
 from server.pagination import PageParams
 from shared.drift import as_found, compare
 from shared.fleet import fleet_outliers
@@ -392,28 +394,34 @@ def _out_in_service(
 
 
 def _overdue(unit: Unit, last: CalibrationSession, st: SensorType, today: date) -> Found | None:
+    due = store_due(unit)
     if unit.status in (UnitStatus.retired, UnitStatus.quarantined):
         return None
-    due = last.performed_at.date() + timedelta(days=st.interval_days)
-    if due >= today:
+    if due is None or due.due >= today:
         return None
-    late = (today - due).days
+    late = (today - due.due).days
     return Found(
         unit=unit,
         kind=FlagKind.overdue,
         severity=Severity.action if late > OVERDUE_ACTION_DAYS else Severity.warning,
         key=f"overdue:{unit.id}:{last.id}",
         message=(
-            f"due {due.isoformat()}, {late} day{'s' if late != 1 else ''} overdue "
-            f"(last calibrated {last.performed_at:%Y-%m-%d}, interval {st.interval_days} days)"
+            f"due {due.due.isoformat()}, {late} day{'s' if late != 1 else ''} overdue "
+            f"(last calibrated {last.performed_at:%Y-%m-%d}, interval {st.interval_days} days"
+            f"{', shortened by drift' if due.shortened else ''})"
         ),
         evidence=_clean(
             {
-                "due": due,
+                "due": due.due,
                 "days_overdue": late,
                 "last_calibrated": last.performed_at,
                 "interval_days": st.interval_days,
-                "basis": f"last calibration + the type's interval ({st.interval_days} days)",
+                "basis": due.basis,
+                "decided_by": due.decided_by,
+                "rate_per_year": due.rate_per_year,
+                "threshold": due.threshold,
+                "n_calibrations": due.n_calibrations,
+                "value_unit": st.value_unit,
             }
         ),
     )
@@ -499,6 +507,7 @@ def find_conditions(
     for unit in units:
         valid = _valid_sessions(unit)
         if not valid:
+            unit.due_on, unit.due_basis = None, None
             continue
         last = valid[-1]
         current[unit.serial] = (unit, last)

@@ -71,6 +71,10 @@ class Unit(Base):
     received_on: Mapped[date | None]
     notes: Mapped[str | None] = mapped_column(Text)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    # the due date and its basis as last computed (server.fleet.service.unit_due), stored at flag
+    # recomputation so the fleet list need not compare calibrations; None until then
+    due_on: Mapped[date | None]
+    due_basis: Mapped[str | None] = mapped_column(Text)
 
     sensor_type: Mapped[SensorType] = relationship(back_populates="units")
     sessions: Mapped[list[CalibrationSession]] = relationship(

@@ -107,3 +107,4 @@ class UnitRead(BaseModel):
     last_calibrated_at: datetime | None
     last_passed: bool | None
     due_on: date | None
+    due_basis: str | None = None

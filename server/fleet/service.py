@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from datetime import date, timedelta
+import dataclasses
+from datetime import date
 from typing import Any
 
 from sqlalchemy import func, select
@@ -14,6 +15,11 @@ from server.errors import Conflict, Invalid, NotFound
 from server.fleet.models import SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeCreate, UnitCreate, UnitRead
 from server.pagination import PageParams
+from shared.drift import compare
+from shared.fleet import DueDate, due_date
+
+COMPARE_POINTS = 201  # readings on which a later curve is compared with the first
+COMPARE_DRAWS = 100  # the significance is not used here: the fewest draws compare() accepts
 
 
 def check_family_choice(
@@ -124,11 +130,99 @@ def find_unit_by_serial(session: Session, serial: str) -> Unit | None:
     return session.scalar(select(Unit).where(func.lower(Unit.serial) == serial.strip().lower()))
 
 
-def due_on(unit: Unit) -> date | None:
-    last = latest_session(unit.sessions)
-    if last is None:
+def _valid(unit: Unit) -> list[CalibrationSession]:
+    """Sessions that count (not voided, with a current fit), oldest first; on a day with more
+    than one, the last of the day."""
+    valid = sorted(
+        (s for s in unit.sessions if s.voided_at is None and s.current_fit is not None),
+        key=lambda s: (s.performed_at, s.id),
+    )
+    by_day = {s.performed_at.date(): s for s in valid}
+    return list(by_day.values())
+
+
+def _fit_of(record: CalibrationSession) -> shared.Fit:
+    assert record.current_fit is not None
+    return shared.Fit.from_dict(record.current_fit.result)
+
+
+def unit_due(unit: Unit) -> DueDate | None:
+    """THE due date of a unit: ``shared.fleet.due_date`` on its cumulative drift history.
+
+    The history is the first valid calibration at deviation 0, then each later one's largest
+    |deviation| from the first one's curve over their common valid range
+    (``shared.drift.compare(first, later).max_deviation``). The threshold is the type's drift
+    limit or tolerance (tolerance_abs + tolerance_rel % of the value where the newest deviation
+    is largest), whichever is smaller. With one calibration, no tolerance or drift limit, or two
+    curves that cannot be compared, the type's interval alone. None without a calibration.
+
+    It compares curves (tens of ms each): pages read the stored ``Unit.due_on``/``due_basis``
+    through ``due_on``/``due_basis``, which flag recomputation keeps current via ``store_due``.
+    """
+    valid = _valid(unit)
+    if not valid:
         return None
-    return last.performed_at.date() + timedelta(days=unit.sensor_type.interval_days)
+    st = unit.sensor_type
+    last = valid[-1].performed_at.date()
+    interval = st.interval_days
+
+    def interval_only(why: str) -> DueDate:
+        found = due_date(last, interval, [], 1.0)
+        return dataclasses.replace(found, basis=f"interval only ({interval} days): {why}")
+
+    if len(valid) < 2:
+        return due_date(last, interval, [(last, 0.0)], 1.0)
+    if not (st.tolerance_abs or st.tolerance_rel or st.drift_limit_abs):
+        return interval_only("the type has no tolerance or drift limit to project drift against")
+    first = _fit_of(valid[0])
+    history = [(valid[0].performed_at.date(), 0.0)]
+    at_value = 0.0
+    for record in valid[1:]:
+        try:
+            found = compare(first, _fit_of(record), points=COMPARE_POINTS, draws=COMPARE_DRAWS)
+        except shared.CalibrationError:
+            return interval_only(
+                f"the calibration of {record.performed_at:%Y-%m-%d} cannot be compared with the "
+                "first one (no common valid range)"
+            )
+        history.append((record.performed_at.date(), abs(found.max_deviation)))
+        at_value = found.at_value
+    tolerance = (st.tolerance_abs or 0.0) + (st.tolerance_rel or 0.0) / 100.0 * abs(at_value)
+    if tolerance <= 0:
+        tolerance = float(st.drift_limit_abs or 0.0)
+    return due_date(
+        last,
+        interval,
+        history,
+        tolerance,
+        drift_limit=st.drift_limit_abs or None,
+        unit=st.value_unit,
+    )
+
+
+def store_due(unit: Unit) -> DueDate | None:
+    """Compute the unit's due date and keep it on the unit (flag recomputation calls this)."""
+    found = unit_due(unit)
+    unit.due_on = found.due if found else None
+    unit.due_basis = found.basis if found else None
+    return found
+
+
+def _stored_or_computed(unit: Unit) -> tuple[date | None, str | None]:
+    if unit.due_on is not None or latest_session(unit.sessions) is None:
+        return unit.due_on, unit.due_basis
+    found = unit_due(unit)  # never recomputed since the migration: compute (costly, correct)
+    return (found.due, found.basis) if found else (None, None)
+
+
+def due_on(unit: Unit) -> date | None:
+    """The unit's due date (see ``unit_due``)."""
+    return _stored_or_computed(unit)[0]
+
+
+def due_basis(unit: Unit) -> str | None:
+    """Why the unit is due then (see ``unit_due``)."""
+    return _stored_or_computed(unit)[1]
 
 
 def unit_read(unit: Unit) -> UnitRead:
@@ -145,4 +239,5 @@ def unit_read(unit: Unit) -> UnitRead:
         last_calibrated_at=last.performed_at if last else None,
         last_passed=fit.passed if fit else None,
         due_on=due_on(unit),
+        due_basis=due_basis(unit),
     )

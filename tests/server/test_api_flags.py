@@ -285,3 +285,38 @@ def test_openapi_documents_flags(client):
     assert "/api/v1/flags/{flag_id}/acknowledge" in spec["paths"]
     assert "/api/v1/units/{serial}/events" in spec["paths"]
     assert "FlagRead" in spec["components"]["schemas"]
+
+
+def test_steady_drift_brings_the_due_date_forward(client, viewer, technician, shop):
+    """S-1 drifts 0.2 deg per 100 days against its first calibration (same noise each time, so
+    each fit is the first shifted exactly: deviations 0, 0.2, 0.4). By hand from the rule in
+    shared.fleet.due_date: rate 0.2 deg / 100 days; threshold min(tolerance 1.0, drift limit
+    0.5) = 0.5 deg, reached 0.5 / 0.2 * 100 = 250 days after the last calibration, before the
+    365-day interval. The last calibration was 260 days ago: due 10 days ago, overdue."""
+    r = client.post(
+        "/api/v1/units", json={"serial": "S-1", "sensor_type": TYPE}, headers=technician
+    )
+    assert r.status_code == 201, r.text
+    last = NOW - timedelta(days=260)
+    for days_before, shift in ((200, 0.0), (100, 0.2), (0, 0.4)):
+        calibrate(
+            client, technician, "S-1", last - timedelta(days=days_before), points(shift, seed=9)
+        )
+    r = client.get("/api/v1/units/S-1", headers=viewer)
+    assert r.status_code == 200, r.text
+    body = r.json()
+    due = last.date() + timedelta(days=250)
+    assert body["due_on"] == due.isoformat()
+    assert "projected crossing of the drift limit 0.5 deg" in body["due_basis"]
+    assert "3 calibrations" in body["due_basis"]
+    (overdue,) = of(flags(client, viewer, open="true"), "S-1", "overdue")
+    assert overdue["evidence"]["due"] == due.isoformat()
+    assert overdue["evidence"]["days_overdue"] == 10
+    assert overdue["evidence"]["decided_by"] == "crossing"
+    assert overdue["evidence"]["basis"] == body["due_basis"]
+    assert not of(flags(client, viewer), "S-1", "drift")  # 0.2 deg a step: under the limit
+    # a single calibration: the interval alone
+    r = client.get("/api/v1/units/O-1", headers=viewer)
+    o1 = r.json()
+    assert o1["due_on"] == ((NOW - timedelta(days=400)).date() + timedelta(days=365)).isoformat()
+    assert o1["due_basis"].startswith("interval only (365 days)")

@@ -119,6 +119,7 @@ def test_units_create_get_list_filter_paginate(client, admin):
         "last_calibrated_at": None,
         "last_passed": None,
         "due_on": None,
+        "due_basis": None,
     }
 
     page = client.get("/api/v1/units?per_page=3&page=2", headers=admin).json()
