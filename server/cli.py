@@ -581,9 +581,9 @@ def _export(args: argparse.Namespace) -> int:
         if args.format == "c":
             found = exports.firmware_header(unit)
         elif args.format == "json":
-            found = exports.table_json(unit, args.step)
+            found = exports.table_download(unit, "json", args.step)
         else:
-            found = exports.table_csv(unit, args.step)
+            found = exports.table_download(unit, "csv", args.step)
     text = found.content if found.content.endswith("\n") else found.content + "\n"
     if args.output is None:
         sys.stdout.write(text)

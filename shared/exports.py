@@ -265,6 +265,26 @@ def _round_add_b(a: Bounds, half: int) -> Bounds:
     return lo, hi
 
 
+def _output(x: Ints, frac_bits: int, parts: dict[str, Ints]) -> Ints:
+    """Drop the fraction bits, rounding half away from zero as the C does; record the steps."""
+    if frac_bits:
+        rounded = _round_add(x, 2 ** (frac_bits - 1))
+        parts["rounded"] = rounded
+        x = c_div(rounded, 2**frac_bits)
+    parts["y"] = x
+    return x
+
+
+def _output_bounds(x: Bounds, frac_bits: int, bounds: dict[str, Bounds]) -> dict[str, Bounds]:
+    """``_output`` on value bounds, for the int32 proof."""
+    if frac_bits:
+        rounded = _round_add_b(x, 2 ** (frac_bits - 1))
+        bounds["rounded"] = rounded
+        x = _div_b(rounded, 2**frac_bits)
+    bounds["y"] = x
+    return bounds
+
+
 def _fits(bounds: Mapping[str, Bounds], limit: int) -> bool:
     return all(-limit <= lo and hi <= limit for lo, hi in bounds.values())
 
@@ -374,14 +394,7 @@ class HornerForm:
             parts[f"prod{k}"] = prod
             acc = coef + (c_div(prod, 2**g) if g else prod)
             parts[f"acc{k}"] = acc
-        if self.frac_bits:
-            rounded = _round_add(acc, 2 ** (self.frac_bits - 1))
-            parts["rounded"] = rounded
-            y = c_div(rounded, 2**self.frac_bits)
-        else:
-            y = acc
-        parts["y"] = y
-        return y, parts
+        return _output(acc, self.frac_bits, parts), parts
 
     def c_lines(self, fn: str, macro: str) -> list[str]:
         t = f"int{self.int_bits}_t"
@@ -470,13 +483,7 @@ def _horner_bounds(
         bounds[f"prod{k}"] = prod
         acc = _add_b((coef, coef), _div_b(prod, 2**g) if g else prod)
         bounds[f"acc{k}"] = acc
-    if frac_bits:
-        rounded = _round_add_b(acc, 2 ** (frac_bits - 1))
-        bounds["rounded"] = rounded
-        bounds["y"] = _div_b(rounded, 2**frac_bits)
-    else:
-        bounds["y"] = acc
-    return bounds
+    return _output_bounds(acc, frac_bits, bounds)
 
 
 def _horner_form(fit: Fit, a: int, b: int, bits: int) -> HornerForm | None:
@@ -577,14 +584,7 @@ class ReciprocalForm:
         parts.update(acc=np.concatenate([acc_min, acc_max]), q=q)
         total = self.v0_scaled + self.sign * q
         parts["total"] = total
-        if self.frac_bits:
-            rounded = _round_add(total, 2 ** (self.frac_bits - 1))
-            parts["rounded"] = rounded
-            y = c_div(rounded, 2**self.frac_bits)
-        else:
-            y = total
-        parts["y"] = y
-        return y, parts
+        return _output(total, self.frac_bits, parts), parts
 
     def c_lines(self, fn: str, macro: str) -> list[str]:
         t = f"int{self.int_bits}_t"
@@ -678,13 +678,7 @@ def _reciprocal_bounds(form: ReciprocalForm) -> dict[str, Bounds]:
     q = (0, q_max)
     total = _add_b((form.v0_scaled, form.v0_scaled), _mul_b((form.sign, form.sign), q))
     bounds = {"d": d, "d_scaled": d_scaled, "den": den, "acc": acc, "q": q, "total": total}
-    if form.frac_bits:
-        rounded = _round_add_b(total, 2 ** (form.frac_bits - 1))
-        bounds["rounded"] = rounded
-        bounds["y"] = _div_b(rounded, 2**form.frac_bits)
-    else:
-        bounds["y"] = total
-    return bounds
+    return _output_bounds(total, form.frac_bits, bounds)
 
 
 def _reciprocal_form(fit: Fit, a: int, b: int, bits: int) -> ReciprocalForm | None:

@@ -18,6 +18,12 @@ CURVE = "#0b6e69"
 BAND = "rgba(11, 110, 105, 0.16)"
 POINT = "#1d2433"
 EXCLUDED = "#c2410c"
+EXCLUDED_MARKER = {
+    "color": EXCLUDED,
+    "size": 10,
+    "symbol": "x-thin-open",
+    "line": {"color": EXCLUDED, "width": 2.5},
+}
 EARLIER = "#8a94a6"
 TOLERANCE = "#b42318"
 SUSPECT = "#b45309"
@@ -156,12 +162,7 @@ def curve_figure(
             y=fit.value[excluded],
             mode="markers",
             name="points excluded",
-            marker={
-                "color": EXCLUDED,
-                "size": 10,
-                "symbol": "x-thin-open",
-                "line": {"color": EXCLUDED, "width": 2.5},
-            },
+            marker=EXCLUDED_MARKER,
             text=[reasons.get(int(i), "excluded") for i in excluded],
             hovertemplate=(
                 f"reading %{{x:.5~g}} {ru}<br>reference %{{y:.5~g}} {vu}"
@@ -301,12 +302,7 @@ def residual_figure(
             y=fit.residuals[shown],
             mode="markers",
             name="excluded",
-            marker={
-                "color": EXCLUDED,
-                "size": 10,
-                "symbol": "x-thin-open",
-                "line": {"color": EXCLUDED, "width": 2.5},
-            },
+            marker=EXCLUDED_MARKER,
             text=[reasons.get(int(i), "excluded") for i in shown],
             hovertemplate=(
                 f"reference %{{x:.5~g}} {vu}<br>residual %{{y:.3~g}} {vu}"

@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING, Any
 from sqlalchemy import JSON, Boolean, Enum, Float, ForeignKey, Integer, String, Text
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
+import shared
 from server.db import Base, UTCDateTime, utcnow
 
 if TYPE_CHECKING:
@@ -98,7 +99,21 @@ class FitRecord(Base):
     session: Mapped[CalibrationSession] = relationship(back_populates="fits")
 
 
+def valid_sessions(sessions: list[CalibrationSession]) -> list[CalibrationSession]:
+    """Sessions that count: not voided, with a current fit; oldest first."""
+    valid = [s for s in sessions if s.voided_at is None and s.current_fit is not None]
+    return sorted(valid, key=lambda s: (s.performed_at, s.id))
+
+
 def latest_session(sessions: list[CalibrationSession]) -> CalibrationSession | None:
     """The newest session that is not voided and has a current fit."""
-    valid = [s for s in sessions if s.voided_at is None and s.current_fit is not None]
-    return max(valid, key=lambda s: (s.performed_at, s.id), default=None)
+    valid = valid_sessions(sessions)
+    return valid[-1] if valid else None
+
+
+def stored_fit(record: CalibrationSession) -> shared.Fit:
+    """The session's current fit, rebuilt from what was stored (nothing is refitted)."""
+    current = record.current_fit
+    if current is None:
+        raise LookupError(f"calibration {record.id} has no current fit")
+    return shared.Fit.from_dict(current.result)

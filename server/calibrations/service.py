@@ -17,7 +17,13 @@ from typing import Any, Literal
 import numpy as np
 
 import shared
-from server.calibrations.models import CalibrationSession, FitRecord, Point, latest_session
+from server.calibrations.models import (
+    CalibrationSession,
+    FitRecord,
+    Point,
+    latest_session,
+    stored_fit,
+)
 from server.calibrations.schemas import (
     BudgetRead,
     BudgetRowRead,
@@ -237,7 +243,7 @@ def fit_of(record: CalibrationSession) -> tuple[shared.Fit, FitRecord]:
     current = record.current_fit
     if current is None:
         raise NotFound(f"calibration {record.id} has no current fit")
-    return shared.Fit.from_dict(current.result), current
+    return stored_fit(record), current
 
 
 def stored_diagnostics(result: shared.Fit, stored: FitRecord) -> dict[str, Any]:

@@ -3,15 +3,13 @@ printable calibration report of one session."""
 
 from __future__ import annotations
 
-from typing import Annotated
-
-from fastapi import APIRouter, Query, Request
+from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, Response
 
 from server.accounts.deps import PageViewer
 from server.db import SessionDep
 from server.exports import service
-from server.exports.routes import Level, ReadingMax, ReadingMin, Step
+from server.exports.routes import LutMaxError, TableParams, download_response, table_response
 from server.fleet.pages import unit_url
 from server.fleet.service import get_unit
 from server.htmx import render
@@ -19,38 +17,16 @@ from server.htmx import render
 router = APIRouter(include_in_schema=False)
 
 
-def _download(found: service.Download) -> Response:
-    return Response(found.content, media_type=found.media_type, headers=found.headers)
-
-
 @router.get("/units/{serial}/table.csv")
-def table_csv(
-    serial: str,
-    session: SessionDep,
-    user: PageViewer,
-    step: Step = 1,
-    reading_min: ReadingMin = None,
-    reading_max: ReadingMax = None,
-    level: Level = None,
-) -> Response:
+def table_csv(serial: str, session: SessionDep, user: PageViewer, query: TableParams) -> Response:
     """The conversion table as CSV, for the unit page's download button."""
-    unit = get_unit(session, serial)
-    return _download(service.table_csv(unit, step, reading_min, reading_max, level))
+    return table_response(get_unit(session, serial), "csv", query)
 
 
 @router.get("/units/{serial}/table.json")
-def table_json(
-    serial: str,
-    session: SessionDep,
-    user: PageViewer,
-    step: Step = 1,
-    reading_min: ReadingMin = None,
-    reading_max: ReadingMax = None,
-    level: Level = None,
-) -> Response:
+def table_json(serial: str, session: SessionDep, user: PageViewer, query: TableParams) -> Response:
     """The conversion table as JSON, for the unit page's download button."""
-    unit = get_unit(session, serial)
-    return _download(service.table_json(unit, step, reading_min, reading_max, level))
+    return table_response(get_unit(session, serial), "json", query)
 
 
 @router.get("/units/{serial}/firmware.h")
@@ -58,11 +34,11 @@ def firmware_h(
     serial: str,
     session: SessionDep,
     user: PageViewer,
-    lut_max_error: Annotated[float | None, Query(gt=0, allow_inf_nan=False)] = None,
+    lut_max_error: LutMaxError = None,
 ) -> Response:
     """The firmware header, for the unit page's download button."""
     unit = get_unit(session, serial)
-    return _download(service.firmware_header(unit, lut_max_error))
+    return download_response(service.firmware_header(unit, lut_max_error))
 
 
 @router.get("/units/{serial}/calibrations/{session_id}/report")

@@ -2,15 +2,17 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Annotated
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Depends, Query
 from fastapi.responses import Response
 
 from server.accounts.deps import ApiViewer
 from server.db import SessionDep
 from server.exports import service
 from server.exports.schemas import ERRORS, ConversionTableRead
+from server.fleet.models import Unit
 from server.fleet.service import get_unit
 
 router = APIRouter(prefix="/api/v1", tags=["exports"])
@@ -43,7 +45,27 @@ LutMaxError = Annotated[
 ]
 
 
-def _download(found: service.Download) -> Response:
+@dataclass(frozen=True)
+class TableQuery:
+    """The query of a conversion-table download (API and page alike)."""
+
+    step: Step = 1
+    reading_min: ReadingMin = None
+    reading_max: ReadingMax = None
+    level: Level = None
+
+
+TableParams = Annotated[TableQuery, Depends()]
+
+
+def table_response(unit: Unit, fmt: str, query: TableQuery) -> Response:
+    found = service.table_download(
+        unit, fmt, query.step, query.reading_min, query.reading_max, query.level
+    )
+    return download_response(found)
+
+
+def download_response(found: service.Download) -> Response:
     return Response(found.content, media_type=found.media_type, headers=found.headers)
 
 
@@ -59,18 +81,9 @@ def _text(media_type: str, description: str) -> dict[int | str, dict[str, object
     response_class=Response,
     responses=_text("text/csv", "reading, value, expanded uncertainty, status; one row a reading"),
 )
-def table_csv(
-    serial: str,
-    session: SessionDep,
-    user: ApiViewer,
-    step: Step = 1,
-    reading_min: ReadingMin = None,
-    reading_max: ReadingMax = None,
-    level: Level = None,
-) -> Response:
+def table_csv(serial: str, session: SessionDep, user: ApiViewer, query: TableParams) -> Response:
     """The conversion table of the unit's current calibration, as CSV (an attachment)."""
-    unit = get_unit(session, serial)
-    return _download(service.table_csv(unit, step, reading_min, reading_max, level))
+    return table_response(get_unit(session, serial), "csv", query)
 
 
 @router.get(
@@ -78,18 +91,9 @@ def table_csv(
     response_class=Response,
     responses={200: {"model": ConversionTableRead, "description": "the table"}, **ERRORS},
 )
-def table_json(
-    serial: str,
-    session: SessionDep,
-    user: ApiViewer,
-    step: Step = 1,
-    reading_min: ReadingMin = None,
-    reading_max: ReadingMax = None,
-    level: Level = None,
-) -> Response:
+def table_json(serial: str, session: SessionDep, user: ApiViewer, query: TableParams) -> Response:
     """The conversion table of the unit's current calibration, as JSON (an attachment)."""
-    unit = get_unit(session, serial)
-    return _download(service.table_json(unit, step, reading_min, reading_max, level))
+    return table_response(get_unit(session, serial), "json", query)
 
 
 @router.get(
@@ -103,4 +107,4 @@ def firmware_h(
     """A C header converting the unit's reading codes to values (integer reading spans only:
     otherwise 422 with the reason)."""
     unit = get_unit(session, serial)
-    return _download(service.firmware_header(unit, lut_max_error))
+    return download_response(service.firmware_header(unit, lut_max_error))

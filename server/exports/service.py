@@ -91,37 +91,28 @@ def _table(
         raise Invalid(str(exc), field="step") from exc
 
 
-def table_csv(
+TABLE_FORMATS = {
+    "csv": (table_to_csv, "text/csv; charset=utf-8"),
+    "json": (table_to_json, "application/json"),
+}
+
+
+def table_download(
     unit: Unit,
+    fmt: str,
     step: int = 1,
     reading_min: float | None = None,
     reading_max: float | None = None,
     level: float | None = None,
 ) -> Download:
-    """The conversion table of the current calibration as CSV."""
+    """The conversion table of the current calibration as ``fmt`` ("csv" or "json")."""
+    write, media_type = TABLE_FORMATS[fmt]
     t = unit.sensor_type
     table = _table(unit, step, reading_min, reading_max, level)
     return Download(
-        table_to_csv(table, t.value_unit, t.reading_unit),
-        "text/csv; charset=utf-8",
-        f"{file_stem(unit.serial)}-table.csv",
-    )
-
-
-def table_json(
-    unit: Unit,
-    step: int = 1,
-    reading_min: float | None = None,
-    reading_max: float | None = None,
-    level: float | None = None,
-) -> Download:
-    """The conversion table of the current calibration as JSON."""
-    t = unit.sensor_type
-    table = _table(unit, step, reading_min, reading_max, level)
-    return Download(
-        table_to_json(table, t.value_unit, t.reading_unit),
-        "application/json",
-        f"{file_stem(unit.serial)}-table.json",
+        write(table, t.value_unit, t.reading_unit),
+        media_type,
+        f"{file_stem(unit.serial)}-table.{fmt}",
     )
 
 

@@ -37,7 +37,7 @@ from sqlalchemy import Select, func, select
 from sqlalchemy.orm import Session, object_session, selectinload
 
 import shared
-from server.calibrations.models import CalibrationSession
+from server.calibrations.models import CalibrationSession, stored_fit, valid_sessions
 from server.db import utcnow
 from server.errors import Conflict, Invalid, NotFound
 from server.flags.models import EventKind, Flag, FlagKind, InstallationEvent, Severity
@@ -100,18 +100,6 @@ def _clean(x: Any) -> Any:
 
 def _g(x: float, digits: int = 3) -> str:
     return f"{x:.{digits}g}"
-
-
-def _valid_sessions(unit: Unit) -> list[CalibrationSession]:
-    """Sessions that count: not voided, with a current fit; oldest first."""
-    valid = [s for s in unit.sessions if s.voided_at is None and s.current_fit is not None]
-    return sorted(valid, key=lambda s: (s.performed_at, s.id))
-
-
-def _fit(record: CalibrationSession) -> shared.Fit:
-    stored = record.current_fit
-    assert stored is not None  # _valid_sessions keeps only sessions with one
-    return shared.Fit.from_dict(stored.result)
 
 
 def _compact(values: Any, n: int = PLOT_POINTS) -> list[float]:
@@ -283,7 +271,7 @@ def _drift(
 ) -> Found | None:
     vu, ru = st.value_unit, st.reading_unit
     try:
-        found = compare(_fit(prev), _fit(cur), drift_limit=st.drift_limit_abs, unit=vu)
+        found = compare(stored_fit(prev), stored_fit(cur), drift_limit=st.drift_limit_abs, unit=vu)
     except shared.CalibrationError:
         return None  # ranges do not overlap: nothing to compare
     if not found.drifted:
@@ -302,10 +290,7 @@ def _drift(
         message=message,
         evidence=_clean(
             {
-                "previous_session_id": prev.id,
-                "previous_at": prev.performed_at,
-                "current_session_id": cur.id,
-                "current_at": cur.performed_at,
+                **_between(prev, cur),
                 "max_deviation": found.max_deviation,
                 "at_reading": found.at_reading,
                 "at_value": found.at_value,
@@ -328,6 +313,16 @@ def _drift(
     )
 
 
+def _between(prev: CalibrationSession, cur: CalibrationSession) -> dict[str, object]:
+    """The two sessions a drift or as-found flag compares, for its evidence."""
+    return {
+        "previous_session_id": prev.id,
+        "previous_at": prev.performed_at,
+        "current_session_id": cur.id,
+        "current_at": cur.performed_at,
+    }
+
+
 def _out_in_service(
     unit: Unit,
     prev: CalibrationSession,
@@ -338,11 +333,11 @@ def _out_in_service(
     if not (st.tolerance_abs or st.tolerance_rel):
         return None
     vu = st.value_unit
-    used = _fit(cur).used  # the points the new calibration used (not fold-back, not excluded)
+    used = stored_fit(cur).used  # the points the new calibration used (not fold-back, not excluded)
     points = [p for i, p in enumerate(cur.points) if i < len(used) and bool(used[i])]
     try:
         found = as_found(
-            _fit(prev),
+            stored_fit(prev),
             [p.reading for p in points],
             [p.reference_value for p in points],
             st.tolerance_abs,
@@ -374,10 +369,7 @@ def _out_in_service(
         message=message,
         evidence=_clean(
             {
-                "previous_session_id": prev.id,
-                "previous_at": prev.performed_at,
-                "current_session_id": cur.id,
-                "current_at": cur.performed_at,
+                **_between(prev, cur),
                 "n_judged": found.n_judged,
                 "n_out": found.n_out,
                 "worst_error": found.worst_error,
@@ -430,7 +422,7 @@ def _overdue(unit: Unit, last: CalibrationSession, st: SensorType, today: date) 
 def _outliers(current: dict[str, tuple[Unit, CalibrationSession]], st: SensorType) -> list[Found]:
     if len(current) < 2:
         return []
-    fits = {serial: _fit(record) for serial, (_, record) in current.items()}
+    fits = {serial: stored_fit(record) for serial, (_, record) in current.items()}
     try:
         result = fleet_outliers(fits)
     except shared.CalibrationError:
@@ -505,7 +497,7 @@ def find_conditions(
     found: list[Found] = []
     current: dict[str, tuple[Unit, CalibrationSession]] = {}
     for unit in units:
-        valid = _valid_sessions(unit)
+        valid = valid_sessions(unit.sessions)
         if not valid:
             unit.due_on, unit.due_basis = None, None
             continue

@@ -10,7 +10,12 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session, selectinload
 
 import shared
-from server.calibrations.models import CalibrationSession, latest_session
+from server.calibrations.models import (
+    CalibrationSession,
+    latest_session,
+    stored_fit,
+    valid_sessions,
+)
 from server.errors import Conflict, Invalid, NotFound
 from server.fleet.models import SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeCreate, UnitCreate, UnitRead
@@ -133,17 +138,8 @@ def find_unit_by_serial(session: Session, serial: str) -> Unit | None:
 def _valid(unit: Unit) -> list[CalibrationSession]:
     """Sessions that count (not voided, with a current fit), oldest first; on a day with more
     than one, the last of the day."""
-    valid = sorted(
-        (s for s in unit.sessions if s.voided_at is None and s.current_fit is not None),
-        key=lambda s: (s.performed_at, s.id),
-    )
-    by_day = {s.performed_at.date(): s for s in valid}
+    by_day = {s.performed_at.date(): s for s in valid_sessions(unit.sessions)}
     return list(by_day.values())
-
-
-def _fit_of(record: CalibrationSession) -> shared.Fit:
-    assert record.current_fit is not None
-    return shared.Fit.from_dict(record.current_fit.result)
 
 
 def unit_due(unit: Unit) -> DueDate | None:
@@ -174,12 +170,12 @@ def unit_due(unit: Unit) -> DueDate | None:
         return due_date(last, interval, [(last, 0.0)], 1.0)
     if not (st.tolerance_abs or st.tolerance_rel or st.drift_limit_abs):
         return interval_only("the type has no tolerance or drift limit to project drift against")
-    first = _fit_of(valid[0])
+    first = stored_fit(valid[0])
     history = [(valid[0].performed_at.date(), 0.0)]
     at_value = 0.0
     for record in valid[1:]:
         try:
-            found = compare(first, _fit_of(record), points=COMPARE_POINTS, draws=COMPARE_DRAWS)
+            found = compare(first, stored_fit(record), points=COMPARE_POINTS, draws=COMPARE_DRAWS)
         except shared.CalibrationError:
             return interval_only(
                 f"the calibration of {record.performed_at:%Y-%m-%d} cannot be compared with the "
