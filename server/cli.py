@@ -1,11 +1,16 @@
 """The `sensorledger` command: serve the app, upgrade the database, add users, create API tokens,
-fit a file of points offline.
+import a file of points as a calibration, export a unit's calibration, back up the database, fit a
+file of points offline.
 
-Every command takes ``--db PATH|URL`` (a SQLite file or a SQLAlchemy URL); without it the database
-is ``$SENSORLEDGER_DATABASE_URL``, else the SQLite file ``./data/sensorledger.db``. Each command
-commits its own transaction. Exit status: 0 done; 1 the machine is in the way (port taken, database
-unreachable); 2 a mistake to correct (bad arguments, unknown user, a name already taken...).
-Messages for mistakes are one line, ``error: ...``, on standard error; never a traceback.
+Every command but ``fit`` takes ``--db PATH|URL`` (a SQLite file or a SQLAlchemy URL); without it
+the database is ``$SENSORLEDGER_DATABASE_URL``, else the SQLite file ``./data/sensorledger.db``.
+Each command commits its own transaction. Exit status: 0 done; 1 the machine is in the way (port
+taken, database unreachable); 2 a mistake to correct (bad arguments, unknown user, a name already
+taken...). Messages for mistakes are one line, ``error: ...``, on standard error; never a traceback.
+
+This module imports only the standard library when it loads: each command imports what it needs
+when it runs, so ``--help`` and ``fit`` never load uvicorn or the web app
+(``tests/server/test_cli.py`` checks it in a clean interpreter).
 """
 
 from __future__ import annotations
@@ -15,50 +20,34 @@ import errno
 import getpass
 import json
 import math
+import os
 import shlex
 import socket
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import date
+from datetime import UTC, date, datetime
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import uvicorn
-from alembic.runtime.migration import MigrationContext
-from alembic.script import ScriptDirectory
-from sqlalchemy import Engine, func, select
-from sqlalchemy.engine import make_url
-from sqlalchemy.exc import (
-    ArgumentError,
-    DatabaseError,
-    InterfaceError,
-    NoSuchModuleError,
-    OperationalError,
-)
-from sqlalchemy.orm import Session
+if TYPE_CHECKING:
+    from sqlalchemy import Engine
+    from sqlalchemy.engine import URL
+    from sqlalchemy.orm import Session
 
-import shared
-from server.accounts import service as accounts
-from server.accounts.models import Role, User
-from server.app import create_app
-from server.calibrations import service as calibrations
-from server.calibrations.csvfile import MAX_BYTES, parse_points_csv
-from server.calibrations.schemas import PointIn
-from server.config import Settings, database_url_from
-from server.db import make_engine, make_sessionmaker
-from server.demo import ADMIN, DEMO_PASSWORD, TECHNICIAN, fleet_size, load_demo
-from server.errors import DomainError, Invalid, NotFound
-from server.exports import service as exports
-from server.fleet.service import get_unit
-from server.formatting import significant, uncertainty
-from server.migrate import alembic_config, upgrade
-from shared.ranking import Ranking
+    from server.calibrations.schemas import CalibrationRead, PointIn
+    from server.calibrations.service import OfflineFit
+    from server.flags.models import Flag
+    from shared.ranking import Ranking
 
 EXIT_OK, EXIT_ENVIRONMENT, EXIT_MISTAKE = 0, 1, 2
 NAME_MAX = 64  # user names and token labels (database column widths)
+# the values of server.accounts.models.Role and server.calibrations.models.SessionKind, written
+# out so that building the parser loads no model (a test keeps them equal)
+ROLES = ("viewer", "technician", "admin")
+KINDS = ("incoming", "as_found", "as_left", "periodic")
 
 
 def _version() -> str:
@@ -72,11 +61,15 @@ def _version() -> str:
 
 
 def _url(args: argparse.Namespace) -> str:
+    from server.config import database_url_from
+
     return database_url_from(getattr(args, "db", None))
 
 
 def describe_database(url: str) -> str:
     """Where the data live, for people: a SQLite file's full path, else the URL without password."""
+    from sqlalchemy.engine import make_url
+
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite" and parsed.database not in (None, "", ":memory:"):
         return f"{Path(str(parsed.database)).resolve()} (SQLite)"
@@ -85,6 +78,13 @@ def describe_database(url: str) -> str:
 
 def _engine(url: str) -> Engine:
     """An engine for ``url``; a URL that cannot be parsed or lacks its driver is a mistake."""
+    from sqlalchemy.engine import make_url
+    from sqlalchemy.exc import ArgumentError, NoSuchModuleError
+
+    from server.config import Settings
+    from server.db import make_engine
+    from server.errors import Invalid
+
     try:
         return make_engine(url, busy_timeout_ms=Settings().sqlite_busy_timeout_ms)
     except (ArgumentError, NoSuchModuleError, ModuleNotFoundError) as exc:
@@ -108,6 +108,9 @@ def _engine(url: str) -> Engine:
 @contextmanager
 def _session(args: argparse.Namespace) -> Iterator[Session]:
     """A session on the newest schema (a fresh database is set up first); the caller commits."""
+    from server.db import make_sessionmaker
+    from server.migrate import upgrade
+
     engine = _engine(_url(args))
     try:
         upgrade(engine)
@@ -118,6 +121,8 @@ def _session(args: argparse.Namespace) -> Iterator[Session]:
 
 
 def _revision(engine: Engine) -> str | None:
+    from alembic.runtime.migration import MigrationContext
+
     with engine.connect() as conn:
         return MigrationContext.configure(conn).get_current_revision()
 
@@ -188,6 +193,11 @@ def _browser_address(host: str, port: int) -> str:
 
 
 def _sign_in_lines(session: Session, args: argparse.Namespace, demo_users: bool) -> list[str]:
+    from sqlalchemy import func, select
+
+    from server.accounts.models import User
+    from server.demo import ADMIN, DEMO_PASSWORD, TECHNICIAN
+
     if demo_users:
         return [
             f'Sign in as user "{ADMIN}" with password "{DEMO_PASSWORD}" (an admin; '
@@ -207,6 +217,15 @@ def _sign_in_lines(session: Session, args: argparse.Namespace, demo_users: bool)
 
 
 def _serve(args: argparse.Namespace) -> int:
+    import uvicorn
+    from sqlalchemy import select
+
+    from server.accounts import service as accounts
+    from server.accounts.models import User
+    from server.app import create_app
+    from server.config import Settings
+    from server.demo import ADMIN, DEMO_PASSWORD, fleet_size, load_demo
+
     problem = port_problem(args.host, args.port)
     if problem:
         print(f"error: {problem}", file=sys.stderr)
@@ -273,6 +292,10 @@ def _configure_serve(parser: argparse.ArgumentParser) -> None:
 
 
 def _db_upgrade(args: argparse.Namespace) -> int:
+    from alembic.script import ScriptDirectory
+
+    from server.migrate import alembic_config, upgrade
+
     url = _url(args)
     engine = _engine(url)
     try:
@@ -297,6 +320,8 @@ def _db_upgrade(args: argparse.Namespace) -> int:
 
 
 def _check_name(name: str, what: str) -> str:
+    from server.errors import Invalid
+
     name = name.strip()
     if len(name) > NAME_MAX:
         raise Invalid(f"{what} has at most {NAME_MAX} characters; this one has {len(name)}")
@@ -305,6 +330,8 @@ def _check_name(name: str, what: str) -> str:
 
 def _read_password(option: str | None, name: str) -> str:
     """From --password, from standard input (``-``), or asked twice without echo."""
+    from server.errors import Invalid
+
     if option == "-":
         return sys.stdin.readline().rstrip("\r\n")
     if option is not None:
@@ -322,6 +349,9 @@ def _read_password(option: str | None, name: str) -> str:
 
 
 def _user_add(args: argparse.Namespace) -> int:
+    from server.accounts import service as accounts
+    from server.accounts.models import Role
+
     name = _check_name(args.name, "a user name")
     password = _read_password(args.password, name)
     with _session(args) as session:
@@ -344,7 +374,7 @@ def _configure_user_add(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--role",
         required=True,
-        choices=[r.value for r in Role],
+        choices=ROLES,
         help="viewer: reads; technician: also calibrates; admin: everything",
     )
     parser.add_argument(
@@ -361,6 +391,9 @@ def _configure_user_add(parser: argparse.ArgumentParser) -> None:
 
 
 def _token_create(args: argparse.Namespace) -> int:
+    from server.accounts import service as accounts
+    from server.errors import NotFound
+
     label = _check_name(args.label or f"created {date.today():%Y-%m-%d}", "a token label")
     with _session(args) as session:
         try:
@@ -409,19 +442,34 @@ def _degree(text: str) -> int | tuple[int, int]:
     raise argparse.ArgumentTypeError(f"{text!r}: give N (polynomial) or M,N (rational)")
 
 
+def _source_name(path: str) -> str:
+    return "standard input" if path == "-" else path
+
+
 def _read_points_file(path: str) -> list[PointIn]:
+    """Points from a CSV file, or from standard input for ``-`` (the upload's parser)."""
+    from server.calibrations.csvfile import MAX_BYTES, parse_points_csv
+    from server.errors import Invalid
+
     try:
-        with open(path, "rb") as handle:
-            data = handle.read(MAX_BYTES + 1)
+        if path == "-":
+            data = sys.stdin.buffer.read(MAX_BYTES + 1)
+        else:
+            with open(path, "rb") as handle:
+                data = handle.read(MAX_BYTES + 1)
     except OSError as exc:
         raise Invalid(f"cannot read {path}: {exc.strerror or exc}", field="file") from None
     try:
         return parse_points_csv(data)
     except Invalid as exc:
-        raise Invalid(f"{path}: {exc.message}", field="file") from None
+        raise Invalid(f"{_source_name(path)}: {exc.message}", field="file") from None
 
 
 def _fit(args: argparse.Namespace) -> int:
+    import shared
+    from server.calibrations import service as calibrations
+    from server.errors import Invalid
+
     points = _read_points_file(args.file)
     if args.family is not None and args.family not in shared.FAMILIES:
         raise Invalid(
@@ -433,7 +481,7 @@ def _fit(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(_plain(found.to_dict()), indent=2))
     else:
-        print(fit_report(args.file, points, found))
+        print(fit_report(_source_name(args.file), points, found))
     return EXIT_OK
 
 
@@ -452,8 +500,11 @@ def _criterion(x: float | None) -> str:
     return "—" if x is None or not math.isfinite(x) else f"{x:.2f}"
 
 
-def fit_report(source: str, points: list[PointIn], found: calibrations.OfflineFit) -> str:
+def fit_report(source: str, points: list[PointIn], found: OfflineFit) -> str:
     """The fit of a file in words and columns, for a terminal (units are the file's own)."""
+    import shared
+    from server.formatting import significant, uncertainty
+
     f = found.fit
     lines = [f"Fit of {source}: {len(points)} points, {f.n_used} used.", ""]
 
@@ -462,8 +513,9 @@ def fit_report(source: str, points: list[PointIn], found: calibrations.OfflineFi
 
     options = ", ".join(f"{k}={v}" for k, v in f.options.items() if v not in (False, None))
     family = f"{f.family} ({options})" if options else f.family
-    if found.ranking is not None:
-        family += f"  [{found.chosen_because}]"
+    if found.ranking is not None:  # named as in the ranking's table below
+        label = next((c.label for c in found.ranking.candidates if c.fit is f), family)
+        family = f"{label}  [{found.chosen_because}]"
     noise = {
         "value": "in the value (plain least squares)",
         "reading": "in the reading (effective-variance weights)",
@@ -537,7 +589,8 @@ def _configure_fit(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "file",
         metavar="FILE",
-        help="CSV with a header row: reference_value,reading[,excluded,exclude_reason]",
+        help="CSV with a header row: reference_value,reading[,excluded,exclude_reason]; "
+        "'-' reads standard input",
     )
     parser.add_argument(
         "--family",
@@ -576,6 +629,10 @@ def _step(text: str) -> int:
 
 
 def _export(args: argparse.Namespace) -> int:
+    from server.errors import Invalid
+    from server.exports import service as exports
+    from server.fleet.service import get_unit
+
     with _session(args) as session:
         unit = get_unit(session, args.serial)
         if args.format == "c":
@@ -617,6 +674,524 @@ def _configure_export(parser: argparse.ArgumentParser) -> None:
     _db_option(parser)
 
 
+# -- import: a file of points as a calibration session -------------------------------------------
+
+# CalibrationCreate's fields as the options that set them, for error messages
+IMPORT_OPTIONS = {
+    "performed_at": "--performed-at",
+    "operator": "--operator",
+    "reference": "--reference",
+    "kind": "--kind",
+    "family": "--family",
+    "ambient": "--ambient",
+    "notes": "--notes",
+    "reference_expanded_u": "--reference-u",
+    "reference_k": "--reference-k",
+    "extra_u": "--extra-u",
+    "extra_label": "--extra-label",
+}
+
+
+def _when(text: str) -> datetime:
+    """An ISO 8601 date and time, as UTC; without an offset it is this machine's local time."""
+    try:
+        moment = datetime.fromisoformat(text.strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a date and time; give ISO 8601, e.g. 2025-03-01T14:30 "
+            f"(this machine's time zone) or 2025-03-01T14:30+01:00"
+        ) from None
+    return (moment if moment.tzinfo else moment.astimezone()).astimezone(UTC)
+
+
+def _import_field(field: str | None, source: str) -> str:
+    """The option or file behind a CalibrationCreate field (``points.3.reading`` -> the file)."""
+    head, _, rest = (field or "points").partition(".")
+    if head != "points":
+        return IMPORT_OPTIONS.get(head, head)
+    index = rest.split(".")[0]
+    return f"{source}, point {int(index) + 1}" if index.isdigit() else source
+
+
+def _recorded_by() -> str:
+    """Who stored the session, as the API's ``recorded_by``: the command line and the OS user."""
+    try:
+        who = getpass.getuser()
+    except (OSError, KeyError):  # no user name in the environment nor the password database
+        return "command line"
+    return f"command line ({who})"[:NAME_MAX]
+
+
+def _require_existing(url: str) -> None:
+    """A SQLite file must exist already: commands that only read or add to it never create one."""
+    from sqlalchemy.engine import make_url
+
+    from server.errors import Invalid
+
+    parsed = make_url(url)
+    if parsed.get_backend_name() != "sqlite" or parsed.database in (None, "", ":memory:"):
+        return
+    path = Path(str(parsed.database)).expanduser()
+    if not path.is_file():
+        raise Invalid(
+            f"--db: there is no database at {path.resolve()}; check --db or "
+            f"SENSORLEDGER_DATABASE_URL",
+            field="db",
+        )
+
+
+def _import(args: argparse.Namespace) -> int:
+    from pydantic import ValidationError
+
+    from server.calibrations import service as calibrations
+    from server.calibrations.schemas import CalibrationCreate
+    from server.errors import Invalid, NotFound
+    from server.flags.service import flag_read, flags_of, recompute_flags
+    from server.fleet.service import get_unit
+
+    source = _source_name(args.file)
+    points = _read_points_file(args.file)  # every check that needs no database comes first
+    try:
+        data = CalibrationCreate(
+            performed_at=args.performed_at or datetime.now(UTC),
+            operator=args.operator,
+            reference=args.reference,
+            kind=args.kind,
+            family=args.family or None,
+            ambient=args.ambient,
+            notes=args.notes,
+            reference_expanded_u=args.reference_u,
+            reference_k=args.reference_k,
+            extra_u=args.extra_u,
+            extra_label=args.extra_label,
+            points=points,
+        )
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        field = ".".join(str(p) for p in first["loc"])
+        message = first["msg"].removeprefix("Value error, ")
+        raise Invalid(f"{_import_field(field, source)}: {message}", field=field) from None
+    url = _url(args)
+    _require_existing(url)
+    with _session(args) as session:
+        try:
+            unit = get_unit(session, args.unit.strip())
+        except NotFound:
+            raise NotFound(
+                f"--unit: no unit {args.unit.strip()!r} in {describe_database(url)}", field="unit"
+            ) from None
+        try:
+            record = calibrations.run_calibration(session, unit, data, recorded_by=_recorded_by())
+        except Invalid as exc:  # nothing is committed: the session rolls back on close
+            raise Invalid(
+                f"{_import_field(exc.field, source)}: {exc.message}", field=exc.field
+            ) from None
+        recompute_flags(session, unit.sensor_type)
+        session.commit()
+        found = calibrations.calibration_read(record)
+        open_flags = [f for f in flags_of(unit) if f.open]
+        if args.json:  # the API's answer to the same upload: the session and the open flags
+            doc = found.model_dump(mode="json")
+            doc["flags"] = [flag_read(f).model_dump(mode="json") for f in open_flags]
+            print(json.dumps(doc, indent=2))
+        else:
+            print(
+                import_report(
+                    found,
+                    open_flags,
+                    value_unit=unit.sensor_type.value_unit,
+                    reading_unit=unit.sensor_type.reading_unit,
+                    where=describe_database(url),
+                )
+            )
+    return EXIT_OK
+
+
+def _with_unit(x: float, unit: str) -> str:
+    return f"{x:g} {unit}".rstrip()
+
+
+WIDTH = 100  # the import report wraps its long lines (rules, reasons, flags) to this width
+
+
+def import_report(
+    found: CalibrationRead,
+    open_flags: list[Flag],
+    *,
+    value_unit: str,
+    reading_unit: str,
+    where: str,
+) -> str:
+    """A stored session in a few lines: what was stored, the fit kept and why, the decision and
+    the unit's open flags after the save."""
+    import textwrap
+
+    from server.formatting import significant
+
+    lines = [
+        f"Stored calibration session {found.id} of {found.unit} ({found.sensor_type}) in {where}."
+    ]
+
+    def row(label: str, text: str, *, bullet: bool = False) -> None:
+        first = f"{label:<14}" + ("- " if bullet else "")
+        lines.extend(
+            textwrap.wrap(
+                text,
+                WIDTH,
+                initial_indent=first,
+                subsequent_indent=" " * len(first),
+                break_on_hyphens=False,
+            )
+            or [first.rstrip()]
+        )
+
+    f, decision = found.fit, found.decision
+    excluded = [(i, p) for i, p in enumerate(found.points) if p.excluded_reason is not None]
+    row(
+        "session",
+        f"{found.kind.value}, {found.performed_at.astimezone(UTC):%Y-%m-%d %H:%M} UTC, by "
+        f"{found.operator} against {found.reference}",
+    )
+    row("points", f"{len(found.points)}, {len(found.points) - len(excluded)} used")
+    for n, (i, p) in enumerate(excluded):
+        row(
+            "" if n else "excluded",
+            f"point {i + 1} ({p.reference_value:g}, {p.reading:g}): {p.excluded_reason}",
+        )
+    if found.ranking is None:
+        row("family", f.family)
+    else:
+        chosen, reason = found.ranking.chosen, found.ranking.reason
+        row(
+            "family",
+            {
+                "requested": f"{chosen}, asked for with --family",
+                "recommended": f"{chosen}, recommended: {reason.removeprefix(chosen + ': ')}",
+                "fallback": f"{chosen}, the type's first family that fitted ({reason})",
+            }[found.ranking.chosen_because],
+        )
+    lo, hi = f.valid_range
+    row("formula", f.formula)
+    row(
+        "valid range",
+        f"{lo:g} to {_with_unit(hi, reading_unit)} (outside it a value is an extrapolation)",
+    )
+    row("rse", f"{significant(f.rse, 4)} {value_unit}".rstrip())
+    if not found.suspects:
+        row("suspect", "none")
+    for i, suspect in enumerate(found.suspects):
+        row("suspect" if i == 0 else "", f"point {suspect.index + 1}: {suspect.reason}")
+    row("decision", "PASSED" if decision.passed else "FAILED")
+    for reason in decision.reasons:
+        row("", reason, bullet=True)
+    row("rule", decision.rule)
+    row("open flags", f"{len(open_flags) or 'none'} on {found.unit}" + (":" if open_flags else ""))
+    for flag in open_flags:
+        row("", f"{flag.severity.value} {flag.kind.value}: {flag.message}", bullet=True)
+    return "\n".join(lines)
+
+
+def _number(text: str) -> float:
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not math.isfinite(x):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a finite number")
+    return x
+
+
+def _configure_import(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "file",
+        metavar="FILE",
+        help="CSV with a header row: reference_value,reading[,excluded,exclude_reason]; "
+        "'-' reads standard input",
+    )
+    parser.add_argument(
+        "--unit",
+        required=True,
+        metavar="SERIAL",
+        help="the serial of the unit calibrated (required)",
+    )
+    parser.add_argument(
+        "--operator", required=True, metavar="NAME", help="who did the calibration (required)"
+    )
+    parser.add_argument(
+        "--reference",
+        required=True,
+        metavar="TEXT",
+        help="the reference instrument or jig used, e.g. 'distance jig DJ-2' (required)",
+    )
+    parser.add_argument(
+        "--performed-at",
+        type=_when,
+        metavar="WHEN",
+        help="when the points were taken, ISO 8601, e.g. 2025-03-01T14:30 (this machine's "
+        "time zone) or 2025-03-01T14:30+01:00 (default: now)",
+    )
+    parser.add_argument(
+        "--kind", choices=KINDS, default="periodic", help="the kind of session (default periodic)"
+    )
+    parser.add_argument(
+        "--family",
+        metavar="F",
+        help="one of the sensor type's families (default: the one the ranking recommends)",
+    )
+    parser.add_argument(
+        "--reference-u",
+        type=_number,
+        metavar="U",
+        help="expanded uncertainty U of the reference standard, value units",
+    )
+    parser.add_argument(
+        "--reference-k",
+        type=_number,
+        default=2.0,
+        metavar="K",
+        help="coverage factor of that U (default 2)",
+    )
+    parser.add_argument(
+        "--extra-u",
+        type=_number,
+        metavar="U",
+        help="one more standard uncertainty, value units (with --extra-label)",
+    )
+    parser.add_argument("--extra-label", metavar="TEXT", help="what --extra-u is")
+    parser.add_argument("--ambient", metavar="TEXT", help="conditions, e.g. '22 degC, 45 %%RH'")
+    parser.add_argument("--notes", metavar="TEXT", help="anything else worth keeping")
+    parser.add_argument(
+        "--json",
+        action="store_true",
+        help="print the stored session as the API returns it (CalibrationRead JSON)",
+    )
+    _db_option(parser)
+
+
+# -- backup --------------------------------------------------------------------------------------
+
+STEP_PAGES = 1024  # pages copied per step at least (4 MiB at SQLite's default page size)
+PROGRESS_LINES = 20  # a large database reports its progress about this many times
+COUNTED = (  # tables read back from the copy, and what their rows are
+    ("sensor_type", "sensor types"),
+    ("unit", "units"),
+    ("calibration_session", "calibration sessions"),
+    ("user_account", "users"),
+)
+
+
+def pg_dump_command(url: URL, path: str) -> str:
+    """The pg_dump command line that backs up the PostgreSQL database at ``url`` (no password)."""
+    words = ["pg_dump", "--format=custom", f"--file={path}"]
+    if url.host:
+        words.append(f"--host={url.host}")
+    if url.port:
+        words.append(f"--port={url.port}")
+    if url.username:
+        words.append(f"--username={url.username}")
+    words.append(str(url.database or ""))
+    return shlex.join(w for w in words if w)
+
+
+def _size(n: int) -> str:
+    """Bytes for people: 812 bytes, 41.0 kB, 3.2 MB (powers of 1000)."""
+    if n < 1000:
+        return f"{n} bytes"
+    x = float(n)
+    for unit in ("kB", "MB", "GB"):
+        x /= 1000
+        if x < 999.95:
+            return f"{x:.1f} {unit}"
+    return f"{x / 1000:.1f} TB"
+
+
+def copy_sqlite(
+    source: Path,
+    target: Path,
+    *,
+    busy_timeout_s: float = 5.0,
+    on_step: Callable[[int, int], None] | None = None,
+) -> tuple[int, datetime]:
+    """Copy the SQLite database ``source`` into the new file ``target`` with SQLite's online
+    backup; returns the pages copied and when the snapshot was taken (UTC).
+
+    The copy is one consistent snapshot: the source connection holds a read transaction for the
+    whole copy, so writers on other connections (a running server) neither restart the copy
+    nor show up half-done in it; with WAL they are not blocked either. ``on_step(done, total)``
+    is called after every step. The copy is left in rollback-journal mode: a single file.
+    """
+    import sqlite3
+
+    src = sqlite3.connect(
+        f"{source.resolve().as_uri()}?mode=rw", uri=True, timeout=busy_timeout_s,
+        isolation_level=None,
+    )  # fmt: skip
+    try:
+        src.execute("BEGIN")
+        src.execute("SELECT count(*) FROM sqlite_master").fetchone()  # the snapshot starts here
+        taken = datetime.now(UTC)
+        total = int(src.execute("PRAGMA page_count").fetchone()[0])
+        dst = sqlite3.connect(target, isolation_level=None)
+        try:
+
+            def progress(_status: int, remaining: int, pages: int) -> None:
+                if on_step is not None:
+                    on_step(pages - remaining, pages)
+
+            step = max(STEP_PAGES, math.ceil(total / PROGRESS_LINES))
+            src.backup(dst, pages=step, progress=progress)
+            dst.execute("PRAGMA journal_mode=DELETE").fetchone()
+        finally:
+            dst.close()
+        src.execute("COMMIT")
+    finally:
+        src.close()
+    return total, taken
+
+
+def read_back(path: Path) -> dict[str, int | None]:
+    """Row counts of the tables in ``COUNTED`` read from the database at ``path`` opened
+    read-only (None for a table it lacks); raises sqlite3.DatabaseError when it is damaged."""
+    import sqlite3
+
+    conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
+    try:
+        check = conn.execute("PRAGMA quick_check").fetchone()[0]
+        if check != "ok":
+            raise sqlite3.DatabaseError(f"the copy fails its integrity check: {check}")
+        tables = {name for (name,) in conn.execute("SELECT name FROM sqlite_master")}
+        return {
+            table: (
+                int(conn.execute(f'SELECT count(*) FROM "{table}"').fetchone()[0])
+                if table in tables
+                else None
+            )
+            for table, _ in COUNTED
+        }
+    finally:
+        conn.close()
+
+
+def _backup_source(args: argparse.Namespace) -> Path:
+    """The SQLite file to back up; any other database is a mistake, explained."""
+    from sqlalchemy.engine import make_url
+    from sqlalchemy.exc import ArgumentError
+
+    from server.errors import Invalid
+
+    url = _url(args)
+    try:
+        parsed = make_url(url)
+    except ArgumentError:
+        raise Invalid(f"--db: cannot read the database URL {url!r}", field="db") from None
+    backend = parsed.get_backend_name()
+    if backend == "postgresql":
+        raise Invalid(
+            f"sensorledger backs up SQLite files only; back up this PostgreSQL database with "
+            f"pg_dump: {pg_dump_command(parsed, args.path)} (pg_dump asks for the password, or "
+            f"reads it from PGPASSWORD or ~/.pgpass; restore with pg_restore)",
+            field="db",
+        )
+    if backend != "sqlite":
+        raise Invalid(
+            f"sensorledger backs up SQLite files only; use the backup tool of the {backend} "
+            f"database {parsed.render_as_string(hide_password=True)}",
+            field="db",
+        )
+    if parsed.database in (None, "", ":memory:"):
+        raise Invalid("an in-memory database has nothing to back up; give --db a file", field="db")
+    _require_existing(url)
+    return Path(str(parsed.database)).expanduser().resolve()
+
+
+def _backup(args: argparse.Namespace) -> int:
+    import sqlite3
+    import tempfile
+
+    from server.config import Settings
+    from server.errors import Invalid
+
+    source = _backup_source(args)
+    target = Path(args.path).expanduser().resolve()
+    if target == source or (target.exists() and target.samefile(source)):
+        raise Invalid(f"{args.path} is the database itself; give another file", field="path")
+    if target.is_dir():
+        raise Invalid(
+            f"{args.path} is a folder; give the backup's file name, e.g. "
+            f"{Path(args.path) / f'sensorledger-{date.today():%Y-%m-%d}.db'}",
+            field="path",
+        )
+    if target.exists() and not args.force:
+        raise Invalid(
+            f"{args.path} exists already; give another name, or --force to replace it",
+            field="path",
+        )
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        handle, name = tempfile.mkstemp(
+            dir=target.parent, prefix=f".{target.name}.", suffix=".partial"
+        )
+        os.close(handle)
+    except OSError as exc:
+        raise Invalid(
+            f"cannot write in {target.parent}: {exc.strerror or exc}", field="path"
+        ) from None
+    partial = Path(name)  # empty, readable by its owner only (the copy holds password hashes)
+    print(f"Backing up {source} (SQLite) to {target}", flush=True)
+
+    def progress(done: int, total: int) -> None:
+        if total > STEP_PAGES:  # one step is the whole file: nothing worth reporting
+            print(f"  copied {done} of {total} pages ({100 * done // total} %)", flush=True)
+
+    try:
+        pages, taken = copy_sqlite(
+            source,
+            partial,
+            busy_timeout_s=Settings().sqlite_busy_timeout_ms / 1000,
+            on_step=progress,
+        )
+        counts = read_back(partial)
+        if target.exists() and not args.force:  # appeared while copying
+            raise Invalid(f"{args.path} appeared while copying; nothing was replaced", field="path")
+        os.replace(partial, target)
+    except sqlite3.Error as exc:
+        print(f"error: cannot back up {source}: {_first_line(exc)}", file=sys.stderr)
+        return EXIT_ENVIRONMENT
+    except OSError as exc:
+        print(f"error: cannot write {target}: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_ENVIRONMENT
+    finally:
+        for suffix in ("", "-journal", "-wal", "-shm"):
+            Path(f"{partial}{suffix}").unlink(missing_ok=True)
+    size = target.stat().st_size
+    print(
+        f"Wrote {target}: {_size(size)} ({pages} pages), the database as it was at "
+        f"{taken:%Y-%m-%d %H:%M:%S} UTC."
+    )
+    found = [f"{counts[table]} {what}" for table, what in COUNTED if counts[table] is not None]
+    if found:
+        print(f"The copy opens and reads back: {', '.join(found)}.")
+    else:
+        print("The copy opens, but holds no sensorledger tables (an empty database).")
+    print(
+        f"To restore it: stop the server, delete {source.name}-wal and {source.name}-shm if "
+        f"they are there,\nthen copy the backup over {source}."
+    )
+    return EXIT_OK
+
+
+def _configure_backup(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "path", metavar="PATH", help="the file to write the copy to (a new file: see --force)"
+    )
+    parser.add_argument(
+        "--force",
+        action="store_true",
+        help="replace PATH if it exists (only once the copy is whole)",
+    )
+    _db_option(parser)
+
+
 # -- the command table ---------------------------------------------------------------------------
 
 
@@ -636,8 +1211,8 @@ GROUPS = {
     "token": "API tokens for scripts",
 }
 
-# One row per command; the parser is built from this table. New commands (import, backup)
-# get a row here and a function above.
+# One row per command; the parser is built from this table. A new command gets a row here and
+# its functions above.
 COMMANDS = (
     Command(("serve",), "run the web app (and the API) on this machine", _configure_serve, _serve),
     Command(
@@ -659,10 +1234,22 @@ COMMANDS = (
         _token_create,
     ),
     Command(
+        ("import",),
+        "store a calibration session of a unit from a CSV file of points (as the API does)",
+        _configure_import,
+        _import,
+    ),
+    Command(
         ("export",),
         "export a unit's current calibration: conversion table (CSV, JSON) or C header",
         _configure_export,
         _export,
+    ),
+    Command(
+        ("backup",),
+        "copy the SQLite database to a file, safely while the server runs",
+        _configure_backup,
+        _backup,
     ),
     Command(
         ("fit",),
@@ -675,7 +1262,9 @@ COMMANDS = (
 EPILOG = """examples:
   sensorledger serve --demo                     try it with an invented fleet
   sensorledger fit points.csv                   rank every family on a file of points
+  sensorledger import points.csv --unit IR-0001 --operator tess --reference "jig DJ-2"
   sensorledger export IR-0001 --format c --output ir_0001.h
+  sensorledger backup backups/sensorledger-2025-06-01.db
   sensorledger user add ada --role admin        then sign in as ada
   sensorledger token create ada --label "bench PC" | tail -n1
 """
@@ -719,26 +1308,36 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_MISTAKE
     try:
         return int(args.run(args))
-    except DomainError as exc:
+    except KeyboardInterrupt:
+        print(file=sys.stderr)
+        return 130
+    except Exception as exc:
+        code = _explain(exc, args)
+        if code is None:
+            raise  # a bug: the traceback is wanted
+        return code
+
+
+def _explain(exc: Exception, args: argparse.Namespace) -> int | None:
+    """One line on standard error and the exit status for a mistake or an unusable database;
+    None for anything else (a bug)."""
+    from sqlalchemy.exc import DatabaseError, InterfaceError, OperationalError
+
+    from server.errors import DomainError
+
+    if isinstance(exc, DomainError):
         print(f"error: {exc.message}", file=sys.stderr)
         return EXIT_MISTAKE
-    except (OperationalError, InterfaceError, DatabaseError) as exc:
-        if not _unusable_database(exc):
-            raise  # a constraint or SQL error is a bug, not the user's database
+    if isinstance(exc, OperationalError | InterfaceError) or type(exc) is DatabaseError:
+        # unreachable, refused, locked, or not a database at all; a constraint or SQL error
+        # (another DatabaseError) is a bug, not the user's database
         print(
             f"error: cannot use the database {describe_database(_url(args))}: "
             f"{_first_line(exc.orig or exc)}",
             file=sys.stderr,
         )
         return EXIT_ENVIRONMENT
-    except KeyboardInterrupt:
-        print(file=sys.stderr)
-        return 130
-
-
-def _unusable_database(exc: DatabaseError | InterfaceError) -> bool:
-    """Unreachable, refused, locked, or not a database at all (a plain DatabaseError)."""
-    return isinstance(exc, OperationalError | InterfaceError) or type(exc) is DatabaseError
+    return None
 
 
 def _first_line(exc: BaseException) -> str:

@@ -10,6 +10,8 @@ import io
 import json
 import re
 import socket
+import subprocess
+import sys
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -62,7 +64,7 @@ def free_port() -> int:
 def uvicorn_calls(monkeypatch: pytest.MonkeyPatch) -> list[dict[str, Any]]:
     """Replace uvicorn.run with a recorder: `serve` returns as soon as it would start serving."""
     calls: list[dict[str, Any]] = []
-    monkeypatch.setattr(cli.uvicorn, "run", lambda app, **kw: calls.append({"app": app, **kw}))
+    monkeypatch.setattr("uvicorn.run", lambda app, **kw: calls.append({"app": app, **kw}))
     return calls
 
 
@@ -328,6 +330,46 @@ def test_fit_mistakes_exit_2_with_one_line(capsys, tmp_path, monkeypatch, argv, 
     assert code == 2 and out == ""
     assert err.startswith(message), err
     assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+
+
+WEB_STACK = {"fastapi", "starlette", "uvicorn", "jinja2", "plotly", "alembic"}
+
+
+def modules_after(code: str) -> set[str]:
+    """The modules a clean interpreter has loaded after running ``code``."""
+    probe = f"import sys\n{code}\nprint(' '.join(sorted(sys.modules)))"
+    root = Path(__file__).resolve().parents[2]
+    out = subprocess.run(
+        [sys.executable, "-c", probe], capture_output=True, text=True, check=True, cwd=root
+    )
+    return set(out.stdout.split())
+
+
+def test_loading_the_cli_imports_only_the_standard_library() -> None:
+    """`sensorledger --help` stays quick: each command imports its own needs when it runs."""
+    loaded = modules_after("import server.cli")
+    tops = {m.split(".")[0] for m in loaded}
+    assert tops & (WEB_STACK | {"sqlalchemy", "pydantic", "numpy", "scipy", "shared"}) == set()
+    assert {m for m in loaded if m.startswith("server.")} == {"server.cli"}
+
+
+def test_help_and_fit_load_neither_uvicorn_nor_the_app(tmp_path) -> None:
+    loaded = modules_after("from server.cli import main\nassert main(['--help']) == 0")
+    assert {m.split(".")[0] for m in loaded} & WEB_STACK == set()
+    csv_file = pot_csv(tmp_path / "pot.csv")
+    loaded = modules_after(f"from server.cli import main\nmain(['fit', {str(csv_file)!r}])")
+    assert "shared.ranking" in loaded  # it did fit
+    # fastapi still comes in through server.errors and server.db; the app and the server do not
+    assert {m.split(".")[0] for m in loaded} & {"uvicorn", "jinja2", "plotly", "alembic"} == set()
+    assert {m for m in loaded if m.startswith(("server.app", "server.demo"))} == set()
+
+
+def test_the_written_out_choices_are_the_models_values() -> None:
+    from server.accounts.models import Role
+    from server.calibrations.models import SessionKind
+
+    assert tuple(r.value for r in Role) == cli.ROLES
+    assert tuple(k.value for k in SessionKind) == cli.KINDS
 
 
 def test_fit_is_a_row_of_the_command_table(capsys) -> None:
