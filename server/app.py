@@ -13,7 +13,9 @@ from fastapi.staticfiles import StaticFiles
 
 from server import errors
 from server.accounts import pages as account_pages
+from server.audit import routes as audit_routes
 from server.calibrations import pages as calibration_pages
+from server.calibrations import refits
 from server.calibrations import routes as calibration_routes
 from server.config import Settings
 from server.db import make_engine, make_sessionmaker
@@ -21,8 +23,10 @@ from server.exports import pages as export_pages
 from server.exports import routes as export_routes
 from server.flags import pages as flag_pages
 from server.flags import routes as flag_routes
+from server.flags.service import bring_due_dates_up
 from server.fleet import pages as fleet_pages
 from server.fleet import routes as fleet_routes
+from server.fleet import type_pages
 from server.htmx import WEB
 from server.migrate import upgrade
 
@@ -36,9 +40,19 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     if migrate:
         upgrade(engine)
 
+    factory = make_sessionmaker(engine)
+    if migrate:
+        with factory() as session:
+            if refits.fail_interrupted(session):
+                session.commit()
+            if bring_due_dates_up(session):
+                session.commit()
+    jobs = refits.JobRunner(factory)
+
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         yield
+        jobs.shutdown()  # a running refit finishes (or fails) before the database goes
         engine.dispose()
 
     app = FastAPI(
@@ -49,7 +63,8 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     )
     app.state.settings = settings
     app.state.engine = engine
-    app.state.sessionmaker = make_sessionmaker(engine)
+    app.state.sessionmaker = factory
+    app.state.jobs = jobs
     errors.install(app)
 
     @app.get("/static/vendor/plotly.min.js", include_in_schema=False)
@@ -67,8 +82,10 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         calibration_routes,
         export_routes,
         flag_routes,
+        audit_routes,
         account_pages,
         fleet_pages,
+        type_pages,
         calibration_pages,
         export_pages,
         flag_pages,

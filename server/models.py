@@ -1,18 +1,21 @@
 """Every ORM model, imported once so that Base.metadata is complete (Alembic, tests)."""
 
 from server.accounts.models import Token, User
-from server.calibrations.models import CalibrationSession, FitRecord, Point
+from server.audit.models import AuditEntry
+from server.calibrations.models import CalibrationSession, FitRecord, Point, RefitJob
 from server.db import Base
 from server.flags.models import Flag, InstallationEvent
 from server.fleet.models import SensorType, Unit
 
 __all__ = [
+    "AuditEntry",
     "Base",
     "CalibrationSession",
     "FitRecord",
     "Flag",
     "InstallationEvent",
     "Point",
+    "RefitJob",
     "SensorType",
     "Token",
     "Unit",

@@ -21,11 +21,19 @@ from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
 from server.db import SessionDep
 from server.errors import Invalid
 from server.exports.service import header_problem
+from server.flags.charts import drift_history_figure
 from server.flags.panels import unit_panels
 from server.flags.service import recompute_flags
 from server.fleet.models import SensorType, Unit
 from server.fleet.pages import unit_url
-from server.fleet.service import due_basis, due_on, get_unit
+from server.fleet.service import (
+    NotComparable,
+    drift_history,
+    due_basis,
+    due_on,
+    get_unit,
+    unit_due,
+)
 from server.formatting import residual_decimals
 from server.htmx import is_partial, render
 
@@ -266,6 +274,7 @@ def unit_context(
             }
         )
     ctx["history"] = history
+    ctx.update(drift_context(unit))
     ctx.update(unit_panels(unit))
     ctx["just_saved"] = next((h for h in history if h["record"].id == saved), None)
     if current is None:
@@ -329,6 +338,31 @@ def unit_context(
     except Invalid as exc:
         ctx["budget_error"] = exc.message
     return ctx
+
+
+def drift_context(unit: Unit) -> dict[str, Any]:
+    """The drift history plot (2 or more valid calibrations), else the sentence saying why not."""
+    try:
+        history = drift_history(unit)
+    except NotComparable as exc:
+        return {"drift_json": None, "drift_note": f"No drift history: {exc}."}
+    if len(history) < 2:
+        have = "one valid calibration" if history else "no valid calibration"
+        return {
+            "drift_json": None,
+            "drift_note": f"Drift history needs a second calibration (this unit has {have}).",
+        }
+    st = unit.sensor_type
+    due = unit_due(unit, history=history)
+    figure = drift_history_figure(
+        history,
+        value_unit=st.value_unit,
+        reading_unit=st.reading_unit,
+        drift_limit=st.drift_limit_abs or None,
+        threshold=due.threshold if due and (st.tolerance_abs or st.tolerance_rel) else None,
+        due=due,
+    )
+    return {"drift_json": figure.to_json() if figure else None, "drift_note": None}
 
 
 def model_rows(ranking: dict[str, Any]) -> list[dict[str, Any]]:

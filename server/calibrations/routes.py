@@ -12,10 +12,17 @@ from server.accounts.deps import ApiTechnician, ApiViewer
 from server.calibrations import service
 from server.calibrations.csvfile import MAX_BYTES, parse_points_csv
 from server.calibrations.models import SessionKind
-from server.calibrations.schemas import CalibrationCreate, CalibrationRead, CurrentCalibrationRead
+from server.calibrations.schemas import (
+    CalibrationCreate,
+    CalibrationRead,
+    CurrentCalibrationRead,
+    VoidCreate,
+)
 from server.db import SessionDep
 from server.errors import Invalid
-from server.flags.service import recompute_flags
+from server.flags.schemas import FlagRead
+from server.flags.service import flag_read, flags_of, recompute_flags
+from server.fleet.models import Unit
 from server.fleet.service import get_unit
 
 router = APIRouter(prefix="/api/v1", tags=["calibrations"])
@@ -30,7 +37,7 @@ def create_calibration(
     record = service.run_calibration(session, unit, data, recorded_by=user.name)
     recompute_flags(session, unit.sensor_type)
     session.commit()
-    return service.calibration_read(record)
+    return service.calibration_read(record).model_copy(update={"flags": open_flags(unit)})
 
 
 @router.post("/units/{serial}/calibrations/csv", status_code=201)
@@ -84,6 +91,20 @@ def create_calibration_from_csv(
     return create_calibration(serial, data, session, user)
 
 
+@router.post("/units/{serial}/calibrations/{session_id}/void")
+def void_calibration(
+    serial: str, session_id: int, data: VoidCreate, session: SessionDep, user: ApiTechnician
+) -> CalibrationRead:
+    """Void a mistaken calibration with a reason: it is kept (and shown struck out) but no longer
+    counts; the unit's flags, due date and current calibration follow."""
+    unit = get_unit(session, serial)
+    record = service.get_session_of(unit, session_id)
+    service.void_session(session, record, data.reason, user.name)
+    recompute_flags(session, unit.sensor_type)
+    session.commit()
+    return service.calibration_read(record)
+
+
 @router.get("/units/{serial}/calibration")
 def current_calibration(
     serial: str,
@@ -98,5 +119,13 @@ def current_calibration(
         ),
     ] = None,
 ) -> CurrentCalibrationRead:
-    """The unit's current calibration: fit, decision, ranking, diagnostics, budget, due date."""
-    return service.current_calibration(get_unit(session, serial), reading)
+    """The unit's current calibration: fit, decision, ranking, diagnostics, budget, due date,
+    open flags."""
+    unit = get_unit(session, serial)
+    found = service.current_calibration(unit, reading)
+    found.calibration.flags = open_flags(unit)
+    return found
+
+
+def open_flags(unit: Unit) -> list[FlagRead]:
+    return [flag_read(f) for f in flags_of(unit) if f.open]

@@ -16,6 +16,7 @@ from pydantic import (
 )
 
 from server.calibrations.models import SessionKind
+from server.flags.schemas import FlagRead
 
 Text64 = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=64)]
 Text128 = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=128)]
@@ -216,6 +217,9 @@ class CalibrationRead(BaseModel):
     notes: str | None
     recorded_by: str | None
     voided: bool
+    voided_at: datetime | None = None
+    voided_by: str | None = None
+    void_reason: str | None = None
     points: list[PointRead]
     fit: FitRead
     decision: DecisionRead
@@ -227,10 +231,51 @@ class CalibrationRead(BaseModel):
     budget: BudgetRead = Field(
         description="at the middle of the valid range, or at the reading asked for"
     )
-    flags: list[dict[str, Any]] = Field(default_factory=list)
+    flags: list[FlagRead] = Field(
+        default_factory=list,
+        description="the unit's open flags after this calibration (on a calibration just "
+        "saved and on the current calibration; empty on older ones)",
+    )
 
 
 class CurrentCalibrationRead(BaseModel):
     unit: str
     due_on: date | None
     calibration: CalibrationRead
+
+
+class VoidCreate(BaseModel):
+    """Why a calibration session is void (it is kept, and no longer counts)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    reason: str = Field(min_length=1, max_length=2000)
+
+
+class RefitProblemRead(BaseModel):
+    session_id: int
+    unit: str
+    performed_at: datetime
+    reason: str
+
+
+class JobRead(BaseModel):
+    """A background refit of a sensor type: ``done`` of ``total`` sessions fitted so far."""
+
+    id: int
+    kind: Literal["refit"] = "refit"
+    sensor_type: str
+    state: str = Field(description="queued, running, done or failed")
+    reason: str = Field(description="why the type is refitted")
+    requested_by: str | None
+    done: int
+    total: int
+    refitted: int = Field(description="sessions that got a new current fit")
+    changed_decisions: int = Field(description="of those, how many now pass/fail differently")
+    problems: list[RefitProblemRead] = Field(
+        description="sessions that could not be refitted; their previous fit stays current"
+    )
+    message: str | None
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None

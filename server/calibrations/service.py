@@ -17,6 +17,7 @@ from typing import Any, Literal
 import numpy as np
 
 import shared
+from server.audit import service as audit
 from server.calibrations.models import (
     CalibrationSession,
     FitRecord,
@@ -38,7 +39,8 @@ from server.calibrations.schemas import (
     RankingRead,
     SuspectRead,
 )
-from server.errors import Invalid, NotFound
+from server.db import utcnow
+from server.errors import Conflict, Invalid, NotFound
 from server.fleet.models import NoiseIn, SensorType, Unit
 from server.fleet.service import due_on
 from shared.budget import TypeB, budget
@@ -236,7 +238,60 @@ def run_calibration(
     ]
     session.add(record)
     session.flush()
+    audit.record(
+        session,
+        recorded_by,
+        "calibration.saved",
+        "unit",
+        unit.serial,
+        f"calibration of {record.performed_at:%Y-%m-%d} ({record.kind.value.replace('_', ' ')}) "
+        f"saved: {result.family}, {'passed' if decision.passed else 'failed'}",
+        session_id=record.id,
+        performed_at=record.performed_at,
+        operator=record.operator,
+        reference=record.reference,
+        family=result.family,
+        passed=decision.passed,
+        points=len(record.points),
+        engine_version=result.engine_version,
+    )
     return record
+
+
+def get_session_of(unit: Unit, session_id: int) -> CalibrationSession:
+    """One of the unit's calibration sessions, by id."""
+    found = next((s for s in unit.sessions if s.id == session_id), None)
+    if found is None:
+        raise NotFound(f"{unit.serial} has no calibration {session_id}")
+    return found
+
+
+def void_session(session: Any, record: CalibrationSession, reason: str, who: str) -> None:
+    """Mark a mistaken session void, with the reason and who; it is kept, no longer counts
+    (current calibration, drift, due date, fleet statistics), and cannot be voided twice. The
+    caller recomputes the type's flags."""
+    text = reason.strip()
+    if not text:
+        raise Invalid("say why the calibration is void: a reason is needed", field="reason")
+    if record.voided_at is not None:
+        raise Conflict(
+            f"calibration {record.id} was voided already by {record.voided_by or 'someone'} on "
+            f"{record.voided_at:%Y-%m-%d %H:%M} UTC: {record.void_reason}",
+            field="reason",
+        )
+    record.voided_at, record.void_reason, record.voided_by = utcnow(), text, who
+    session.flush()
+    audit.record(
+        session,
+        who,
+        "calibration.voided",
+        "unit",
+        record.unit.serial,
+        f"calibration of {record.performed_at:%Y-%m-%d} voided: {text}",
+        session_id=record.id,
+        performed_at=record.performed_at,
+        reason=text,
+    )
 
 
 def fit_of(record: CalibrationSession) -> tuple[shared.Fit, FitRecord]:
@@ -361,6 +416,9 @@ def calibration_read(record: CalibrationSession, reading: float | None = None) -
         notes=record.notes,
         recorded_by=record.recorded_by,
         voided=record.voided_at is not None,
+        voided_at=record.voided_at,
+        voided_by=record.voided_by,
+        void_reason=record.void_reason,
         points=points,
         fit=fit,
         decision=DecisionRead(**stored.decision),

@@ -37,7 +37,8 @@ from sqlalchemy import Select, func, select
 from sqlalchemy.orm import Session, object_session, selectinload
 
 import shared
-from server.calibrations.models import CalibrationSession, stored_fit, valid_sessions
+from server.audit import service as audit
+from server.calibrations.models import CalibrationSession, FitRecord, stored_fit, valid_sessions
 from server.db import utcnow
 from server.errors import Conflict, Invalid, NotFound
 from server.flags.models import EventKind, Flag, FlagKind, InstallationEvent, Severity
@@ -171,6 +172,19 @@ def create_event(
         unit.status, unit.installed_in = UnitStatus.in_stock, None
     session.add(event)
     session.flush()
+    audit.record(
+        session,
+        recorded_by,
+        f"unit.{data.kind.value}",
+        "unit",
+        unit.serial,
+        f"{unit.serial} {data.kind.value} {'in' if data.kind is EventKind.installed else 'from'} "
+        f"{location} on {data.at:%Y-%m-%d}",
+        event_id=event.id,
+        location=location,
+        at=data.at,
+        note=event.note,
+    )
     return event
 
 
@@ -432,6 +446,7 @@ def _outliers(current: dict[str, tuple[Unit, CalibrationSession]], st: SensorTyp
         if score.level not in ("action", "warning"):
             continue
         unit, record = current[serial]
+        row = result.serials.index(serial)
         j = int(np.argmin(np.abs(result.probe_readings - score.at_reading)))
         centre = float(result.center[j])
         out.append(
@@ -456,6 +471,12 @@ def _outliers(current: dict[str, tuple[Unit, CalibrationSession]], st: SensorTyp
                         "scale": float(result.scale[j]),
                         "units_compared": len(result.serials),
                         "probe_readings": result.probe_readings,
+                        # this unit at each probe (for the plot): its value, the fleet's robust
+                        # centre and scale there, and its robust z
+                        "probe_values": result.values[row],
+                        "probe_center": result.center,
+                        "probe_scale": result.scale,
+                        "probe_z": result.z[row],
                         "rule": result.rule,
                         "value_unit": st.value_unit,
                         "reading_unit": st.reading_unit,
@@ -553,6 +574,29 @@ def recompute_all(session: Session, *, today: date | None = None) -> None:
     """``recompute_flags`` for every sensor type."""
     for sensor_type in session.scalars(select(SensorType).order_by(SensorType.name)):
         recompute_flags(session, sensor_type, today=today)
+
+
+def bring_due_dates_up(session: Session) -> int:
+    """Recompute the types with a calibrated, unretired unit whose due date was never stored
+    (a database upgraded from before due dates were kept); how many types. Cheap when there
+    are none: one query."""
+    stale = session.scalars(
+        select(Unit.sensor_type_id)
+        .join(Unit.sessions)
+        .join(CalibrationSession.fits)
+        .where(
+            Unit.due_on.is_(None),
+            Unit.status != UnitStatus.retired,
+            CalibrationSession.voided_at.is_(None),
+            FitRecord.is_current.is_(True),
+        )
+        .distinct()
+    ).all()
+    for sensor_type_id in stale:
+        sensor_type = session.get(SensorType, sensor_type_id)
+        if sensor_type is not None:
+            recompute_flags(session, sensor_type)
+    return len(stale)
 
 
 # -- reading and acknowledging ---------------------------------------------------------------------
@@ -654,6 +698,18 @@ def acknowledge(session: Session, flag: Flag, note: str, who: str) -> Flag:
         )
     flag.acknowledged_by, flag.acknowledged_at, flag.acknowledged_note = who, utcnow(), text
     session.flush()
+    audit.record(
+        session,
+        who,
+        "flag.acknowledged",
+        "unit",
+        flag.unit.serial,
+        f"{TITLES[flag.kind].lower()} flag acknowledged: {text}",
+        flag_id=flag.id,
+        kind=flag.kind,
+        message=flag.message,
+        note=text,
+    )
     return flag
 
 

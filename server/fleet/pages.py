@@ -12,6 +12,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse
 from server.accounts.deps import PageViewer
 from server.db import SessionDep
 from server.errors import Invalid
+from server.flags.models import FlagKind
 from server.flags.service import ABBREVIATIONS, TITLES, open_kinds_by_unit
 from server.fleet import service
 from server.fleet.models import UnitStatus
@@ -39,11 +40,23 @@ def _status(value: str) -> UnitStatus | None:
         ) from None
 
 
+def _flag(value: str) -> str | None:
+    if not value:
+        return None
+    if value != "any" and value not in {k.value for k in FlagKind}:
+        raise Invalid(
+            f"unknown flag {value!r}; one of: any, {', '.join(k.value for k in FlagKind)}",
+            field="flag",
+        )
+    return value
+
+
 def fleet_url(
     *,
     q: str = "",
     sensor_type: str = "",
     status: str = "",
+    flag: str = "",
     page: int = 1,
     per_page: int = DEFAULT_PER_PAGE,
 ) -> str:
@@ -52,6 +65,7 @@ def fleet_url(
         "q": q.strip(),
         "type": sensor_type,
         "status": status,
+        "flag": flag,
         "page": page if page != 1 else "",
         "per_page": per_page if per_page != DEFAULT_PER_PAGE else "",
     }
@@ -68,17 +82,24 @@ def fleet(
     q: Annotated[str, Query(description="part of a serial")] = "",
     sensor_type: Annotated[str, Query(alias="type")] = "",
     status: str = "",
+    flag: Annotated[str, Query(description="a flag kind the unit has open, or 'any'")] = "",
 ) -> HTMLResponse:
-    """Every unit, filtered by part of the serial, type and status; ``results`` for htmx."""
+    """Every unit, filtered by part of the serial, type, status and open flags; ``results`` for
+    htmx."""
     units, total = service.list_units(
-        session, page, sensor_type=sensor_type or None, status=_status(status), q=q
+        session,
+        page,
+        sensor_type=sensor_type or None,
+        status=_status(status),
+        q=q,
+        flag=_flag(flag),
     )
     serial_of = {u.id: u.serial for u in units}
     ids = list(serial_of)
     first = page.offset + 1 if units else 0
     last = page.offset + len(units)
     last_page = max(1, -(-total // page.per_page))
-    link = dict(q=q, sensor_type=sensor_type, status=status, per_page=page.per_page)
+    link = dict(q=q, sensor_type=sensor_type, status=status, flag=flag, per_page=page.per_page)
     return render(
         request,
         "fleet/page.html",
@@ -93,6 +114,8 @@ def fleet(
         q=q,
         sensor_type=sensor_type,
         status=status,
+        flag=flag,
+        flag_kinds=list(FlagKind),
         per_page=page.per_page,
         default_per_page=DEFAULT_PER_PAGE,
         types=[t.name for t in service.list_sensor_types(session)],
@@ -112,6 +135,7 @@ def find(
     q: Annotated[str, Query(description="what the search box held")] = "",
     sensor_type: Annotated[str, Query(alias="type")] = "",
     status: str = "",
+    flag: str = "",
 ) -> RedirectResponse:
     """A scanned (or typed) serial + Enter: the unit on an exact match, else the filtered list."""
     text = (serial or q).strip()
@@ -119,5 +143,5 @@ def find(
     if unit is not None:
         return RedirectResponse(unit_url(unit.serial), status_code=303)
     return RedirectResponse(
-        fleet_url(q=text, sensor_type=sensor_type, status=status), status_code=303
+        fleet_url(q=text, sensor_type=sensor_type, status=status, flag=flag), status_code=303
     )

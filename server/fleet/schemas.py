@@ -63,6 +63,36 @@ class SensorTypeCreate(BaseModel):
         return self
 
 
+class SensorTypeUpdate(BaseModel):
+    """A change to a sensor type: only the fields given change (null clears an optional one).
+
+    Its name, quantity, units and reading span stay: records already made in them would change
+    meaning (create another type instead). A change to how the type is fitted or judged
+    (families, family_options, noise_in, tolerances, tur, reading_resolution) refits every
+    calibration of the type as a background job; a change to the drift limit or the interval
+    recomputes the type's flags and due dates at once.
+    """
+
+    model_config = ConfigDict(extra="forbid")
+
+    families: list[str] | None = Field(None, min_length=1)
+    family_options: dict[str, dict[str, Any]] | None = None
+    tolerance_abs: float | None = Field(None, ge=0, allow_inf_nan=False)
+    tolerance_rel: float | None = Field(None, ge=0, allow_inf_nan=False)
+    drift_limit_abs: float | None = Field(None, gt=0, allow_inf_nan=False)
+    interval_days: int | None = Field(None, ge=1, le=3650)
+    tur: float | None = Field(None, gt=0)
+    noise_in: NoiseIn | None = None
+    reading_resolution: float | None = Field(None, gt=0, allow_inf_nan=False)
+
+    @model_validator(mode="after")
+    def _required_stay_set(self) -> SensorTypeUpdate:
+        for name in ("families", "family_options", "interval_days", "tur", "noise_in"):
+            if name in self.model_fields_set and getattr(self, name) is None:
+                raise ValueError(f"{name} cannot be cleared")
+        return self
+
+
 class SensorTypeRead(BaseModel):
     model_config = ConfigDict(from_attributes=True)
 
@@ -94,6 +124,28 @@ class UnitCreate(BaseModel):
     sensor_type: Name
     received_on: date | None = None
     notes: str | None = Field(None, max_length=2000)
+
+
+class UnitUpdate(BaseModel):
+    """A unit taken out of use (quarantined, retired) or back into stock, or its notes.
+
+    ``installed`` is not set here: installation events record where and when."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    status: UnitStatus | None = None
+    notes: str | None = Field(None, max_length=2000)
+
+    @model_validator(mode="after")
+    def _not_installed(self) -> UnitUpdate:
+        if self.status is UnitStatus.installed:
+            raise ValueError(
+                "a unit is installed by recording an installation event "
+                "(POST /api/v1/units/{serial}/events), which keeps where and when"
+            )
+        if "status" in self.model_fields_set and self.status is None:
+            raise ValueError("status cannot be cleared")
+        return self
 
 
 class UnitRead(BaseModel):

@@ -3,13 +3,16 @@
 from __future__ import annotations
 
 import dataclasses
-from datetime import date
+from dataclasses import dataclass
+from datetime import date, datetime
 from typing import Any
 
+import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session, selectinload
 
 import shared
+from server.audit import service as audit
 from server.calibrations.models import (
     CalibrationSession,
     latest_session,
@@ -17,8 +20,15 @@ from server.calibrations.models import (
     valid_sessions,
 )
 from server.errors import Conflict, Invalid, NotFound
+from server.flags.models import Flag, FlagKind
 from server.fleet.models import SensorType, Unit, UnitStatus
-from server.fleet.schemas import SensorTypeCreate, UnitCreate, UnitRead
+from server.fleet.schemas import (
+    SensorTypeCreate,
+    SensorTypeUpdate,
+    UnitCreate,
+    UnitRead,
+    UnitUpdate,
+)
 from server.pagination import PageParams
 from shared.drift import compare
 from shared.fleet import DueDate, due_date
@@ -50,7 +60,9 @@ def check_family_choice(
     return checked
 
 
-def create_sensor_type(session: Session, data: SensorTypeCreate) -> SensorType:
+def create_sensor_type(
+    session: Session, data: SensorTypeCreate, actor: str | None = None
+) -> SensorType:
     if session.scalar(select(SensorType).where(SensorType.name == data.name)) is not None:
         raise Conflict(f"sensor type {data.name!r} exists already", field="name")
     if len(set(data.families)) != len(data.families):
@@ -59,7 +71,88 @@ def create_sensor_type(session: Session, data: SensorTypeCreate) -> SensorType:
     sensor_type = SensorType(**data.model_dump(exclude={"family_options"}), family_options=options)
     session.add(sensor_type)
     session.flush()
+    audit.record(
+        session,
+        actor,
+        "sensor_type.created",
+        "sensor_type",
+        sensor_type.name,
+        f"sensor type {sensor_type.name} created",
+        settings=data.model_dump(),
+    )
     return sensor_type
+
+
+REFIT_FIELDS = (  # a change to one of these changes fits or decisions: refit the type
+    "families",
+    "family_options",
+    "noise_in",
+    "tolerance_abs",
+    "tolerance_rel",
+    "tur",
+    "reading_resolution",
+)
+RECOMPUTE_FIELDS = ("drift_limit_abs", "interval_days")  # flags and due dates only
+
+
+@dataclass(frozen=True, slots=True)
+class TypeChange:
+    """What an edit changed: {field: (before, after)}; whether the type needs a refit, or only
+    its flags recomputed."""
+
+    changed: dict[str, tuple[Any, Any]]
+
+    @property
+    def needs_refit(self) -> bool:
+        return any(name in self.changed for name in REFIT_FIELDS)
+
+    @property
+    def needs_recompute(self) -> bool:
+        return any(name in self.changed for name in RECOMPUTE_FIELDS)
+
+    def describe(self) -> str:
+        """The change in words, e.g. "tolerance_abs 3 -> 2; families [...] -> [...]"."""
+        return "; ".join(f"{k} {v[0]!r} -> {v[1]!r}" for k, v in self.changed.items())
+
+
+def update_sensor_type(
+    session: Session, sensor_type: SensorType, data: SensorTypeUpdate, actor: str | None = None
+) -> TypeChange:
+    """Apply the fields given; checks the result as a whole (families and their options, a
+    tolerance left). Refitting and recomputing are the caller's, from the returned change."""
+    given = data.model_dump(exclude_unset=True)
+    families = given.get("families", sensor_type.families)
+    if len(set(families)) != len(families):
+        raise Invalid("a family is listed twice", field="families")
+    if "families" in given and "family_options" not in given:
+        kept = {k: v for k, v in sensor_type.family_options.items() if k in families}
+        options = check_family_choice(families, kept)
+    else:
+        options = check_family_choice(families, given.get("family_options", {}))
+    given["families"], given["family_options"] = list(families), options
+    tol_abs = given.get("tolerance_abs", sensor_type.tolerance_abs)
+    tol_rel = given.get("tolerance_rel", sensor_type.tolerance_rel)
+    if not (tol_abs or tol_rel):
+        raise Invalid("a type needs tolerance_abs and/or tolerance_rel", field="tolerance_abs")
+    changed: dict[str, tuple[Any, Any]] = {}
+    for name, value in given.items():
+        before = getattr(sensor_type, name)
+        if before != value:
+            changed[name] = (before, value)
+            setattr(sensor_type, name, value)
+    session.flush()
+    change = TypeChange(changed)
+    if changed:
+        audit.record(
+            session,
+            actor,
+            "sensor_type.updated",
+            "sensor_type",
+            sensor_type.name,
+            f"sensor type {sensor_type.name}: {change.describe()}",
+            changed={k: {"before": v[0], "after": v[1]} for k, v in changed.items()},
+        )
+    return change
 
 
 def list_sensor_types(session: Session) -> list[SensorType]:
@@ -73,7 +166,7 @@ def get_sensor_type(session: Session, name: str, *, field: str | None = None) ->
     return found
 
 
-def create_unit(session: Session, data: UnitCreate) -> Unit:
+def create_unit(session: Session, data: UnitCreate, actor: str | None = None) -> Unit:
     sensor_type = get_sensor_type(session, data.sensor_type, field="sensor_type")
     if session.scalar(select(Unit).where(Unit.serial == data.serial)) is not None:
         raise Conflict(f"unit {data.serial!r} exists already", field="serial")
@@ -86,7 +179,53 @@ def create_unit(session: Session, data: UnitCreate) -> Unit:
     )
     session.add(unit)
     session.flush()
+    audit.record(
+        session,
+        actor,
+        "unit.registered",
+        "unit",
+        unit.serial,
+        f"{unit.serial} registered as a {sensor_type.name}",
+        received_on=unit.received_on,
+        notes=unit.notes,
+    )
     return unit
+
+
+def update_unit(
+    session: Session, unit: Unit, data: UnitUpdate, actor: str | None = None
+) -> list[str]:
+    """Apply the fields given; the names of those that changed. An installed unit is removed
+    (an installation event) before it is quarantined or retired."""
+    given = data.model_dump(exclude_unset=True)
+    if given.get("status", unit.status) != unit.status and unit.status is UnitStatus.installed:
+        raise Invalid(
+            f"{unit.serial} is installed in {unit.installed_in or 'an instrument'}; "
+            "record its removal first",
+            field="status",
+        )
+    if "notes" in given:
+        given["notes"] = (given["notes"] or "").strip() or None
+    changed = {
+        name: {"before": getattr(unit, name), "after": value}
+        for name, value in given.items()
+        if getattr(unit, name) != value
+    }
+    for name in changed:
+        setattr(unit, name, given[name])
+    session.flush()
+    if changed:
+        words = "; ".join(f"{k} {v['before']} -> {v['after']}" for k, v in changed.items())
+        audit.record(
+            session,
+            actor,
+            "unit.updated",
+            "unit",
+            unit.serial,
+            f"{unit.serial}: {words}",
+            changed=changed,
+        )
+    return list(changed)
 
 
 def _with_history() -> tuple[Any, ...]:
@@ -110,13 +249,20 @@ def list_units(
     sensor_type: str | None = None,
     status: UnitStatus | None = None,
     q: str | None = None,
+    flag: str | None = None,
 ) -> tuple[list[Unit], int]:
-    """Units ordered by serial, filtered; ``q`` matches part of the serial (any case)."""
+    """Units ordered by serial, filtered; ``q`` matches part of the serial (any case); ``flag``
+    a flag kind (or "any") the unit has open."""
     query = select(Unit)
     if sensor_type:
         query = query.join(Unit.sensor_type).where(SensorType.name == sensor_type)
     if status:
         query = query.where(Unit.status == status)
+    if flag:
+        flagged = select(Flag.unit_id).where(Flag.open.is_(True))
+        if flag != "any":
+            flagged = flagged.where(Flag.kind == FlagKind(flag))
+        query = query.where(Unit.id.in_(flagged))
     if q and q.strip():
         pattern = "%" + q.strip().lower().replace("%", r"\%").replace("_", r"\_") + "%"
         query = query.where(func.lower(Unit.serial).like(pattern, escape="\\"))
@@ -142,15 +288,77 @@ def _valid(unit: Unit) -> list[CalibrationSession]:
     return list(by_day.values())
 
 
-def unit_due(unit: Unit) -> DueDate | None:
+@dataclass(frozen=True, slots=True)
+class DriftPoint:
+    """One valid calibration of a unit against the unit's first one (value units).
+
+    ``deviation`` is the signed later - first difference where |later - first| is largest over
+    their common valid range (0 for the first calibration), at reading ``at_reading``, where the
+    later curve's value is ``at_value``. ``band`` is the half-width of the simultaneous band of the
+    difference at that reading (``shared.drift.compare``'s ``band``; its critical value comes from
+    only ``COMPARE_DRAWS`` draws, so it is approximate). The three are None for the first one.
+    """
+
+    on: date
+    session_id: int
+    deviation: float
+    at_reading: float | None = None
+    at_value: float | None = None
+    band: float | None = None
+
+
+class NotComparable(Exception):
+    """A later calibration cannot be compared with the unit's first one."""
+
+    def __init__(self, performed_at: datetime) -> None:
+        self.performed_at = performed_at
+        super().__init__(
+            f"the calibration of {performed_at:%Y-%m-%d} cannot be compared with the "
+            "first one (no common valid range)"
+        )
+
+
+def drift_history(unit: Unit) -> list[DriftPoint]:
+    """The unit's cumulative drift history: its valid calibrations (see ``_valid``), oldest first.
+
+    The first one at deviation 0, then each later one's ``shared.drift.compare(first, later)``
+    largest deviation. Empty without a calibration. Raises ``NotComparable`` when a later curve
+    shares no valid range with the first one. Tens of ms per later calibration.
+    """
+    valid = _valid(unit)
+    if not valid:
+        return []
+    first = stored_fit(valid[0])
+    history = [DriftPoint(on=valid[0].performed_at.date(), session_id=valid[0].id, deviation=0.0)]
+    for record in valid[1:]:
+        try:
+            found = compare(first, stored_fit(record), points=COMPARE_POINTS, draws=COMPARE_DRAWS)
+        except shared.CalibrationError as exc:
+            raise NotComparable(record.performed_at) from exc
+        i = int(np.argmax(np.abs(found.deviation)))  # the grid point of max_deviation
+        history.append(
+            DriftPoint(
+                on=record.performed_at.date(),
+                session_id=record.id,
+                deviation=found.max_deviation,
+                at_reading=found.at_reading,
+                at_value=found.at_value,
+                band=float(found.band[i]),
+            )
+        )
+    return history
+
+
+def unit_due(unit: Unit, *, history: list[DriftPoint] | None = None) -> DueDate | None:
     """THE due date of a unit: ``shared.fleet.due_date`` on its cumulative drift history.
 
-    The history is the first valid calibration at deviation 0, then each later one's largest
-    |deviation| from the first one's curve over their common valid range
+    The history (``drift_history``) is the first valid calibration at deviation 0, then each later
+    one's largest |deviation| from the first one's curve over their common valid range
     (``shared.drift.compare(first, later).max_deviation``). The threshold is the type's drift
     limit or tolerance (tolerance_abs + tolerance_rel % of the value where the newest deviation
     is largest), whichever is smaller. With one calibration, no tolerance or drift limit, or two
     curves that cannot be compared, the type's interval alone. None without a calibration.
+    ``history`` is that history when the caller has it already (it is not recomputed).
 
     It compares curves (tens of ms each): pages read the stored ``Unit.due_on``/``due_basis``
     through ``due_on``/``due_basis``, which flag recomputation keeps current via ``store_due``.
@@ -170,26 +378,18 @@ def unit_due(unit: Unit) -> DueDate | None:
         return due_date(last, interval, [(last, 0.0)], 1.0)
     if not (st.tolerance_abs or st.tolerance_rel or st.drift_limit_abs):
         return interval_only("the type has no tolerance or drift limit to project drift against")
-    first = stored_fit(valid[0])
-    history = [(valid[0].performed_at.date(), 0.0)]
-    at_value = 0.0
-    for record in valid[1:]:
-        try:
-            found = compare(first, stored_fit(record), points=COMPARE_POINTS, draws=COMPARE_DRAWS)
-        except shared.CalibrationError:
-            return interval_only(
-                f"the calibration of {record.performed_at:%Y-%m-%d} cannot be compared with the "
-                "first one (no common valid range)"
-            )
-        history.append((record.performed_at.date(), abs(found.max_deviation)))
-        at_value = found.at_value
+    try:
+        points = drift_history(unit) if history is None else history
+    except NotComparable as exc:
+        return interval_only(str(exc))
+    at_value = points[-1].at_value or 0.0
     tolerance = (st.tolerance_abs or 0.0) + (st.tolerance_rel or 0.0) / 100.0 * abs(at_value)
     if tolerance <= 0:
         tolerance = float(st.drift_limit_abs or 0.0)
     return due_date(
         last,
         interval,
-        history,
+        [(p.on, abs(p.deviation)) for p in points],
         tolerance,
         drift_limit=st.drift_limit_abs or None,
         unit=st.value_unit,

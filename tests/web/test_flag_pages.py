@@ -3,14 +3,19 @@ page's flags and installation form, the fleet's badges."""
 
 from __future__ import annotations
 
+import json
 import re
+from html import unescape
 from pathlib import Path
 
 import pytest
 
+import shared
 from server.app import create_app
 from server.config import Settings
 from server.flags.service import recompute_all
+from server.fleet.service import get_unit
+from shared.drift import compare
 from tests.web.seed import TECHNICIAN, Fleet, seed
 
 FLEET = Fleet()
@@ -104,3 +109,30 @@ def test_unit_page_flags_and_installations(client) -> None:
     page = client.get(f"/units/{FLEET.pot}").text
     assert "arm A / elbow" in page and "2026-01-02 10:00 UTC" in page
     assert '<option value="removed" selected>' in page  # next: remove it
+
+
+def test_unit_page_drift_history_plot_or_sentence(app, client) -> None:
+    """Two calibrations: the plot's numbers are shared.drift.compare(first, second) of the stored
+    fits, with the ±5 mm drift limit; one calibration: the sentence, no plot."""
+    with app.state.sessionmaker() as session:
+        unit = get_unit(session, FLEET.calibrated)
+        ordered = sorted(unit.sessions, key=lambda s: s.performed_at)
+        fits = [shared.Fit.from_dict(s.current_fit.result) for s in ordered]
+        dates = [s.performed_at.date().isoformat() for s in ordered]
+    assert len(fits) == 2
+    expected = compare(fits[0], fits[1], points=201, draws=100)
+    html = client.get(f"/units/{FLEET.calibrated}").text
+    plot = re.search(r'id="drift-plot"[^>]*data-figure="([^"]+)"', html)
+    assert plot is not None
+    data = json.loads(unescape(plot.group(1)))["data"]
+    (main,) = [t for t in data if t["name"] == "largest deviation from the first curve"]
+    assert list(main["x"]) == dates
+    assert main["y"] == pytest.approx([0.0, expected.max_deviation], rel=1e-12)
+    assert f"{expected.at_reading:.4g} counts" in main["customdata"][1]
+    limit = [t for t in data if str(t["name"]).startswith("drift limit ±5 mm")]
+    assert sorted(t["y"][0] for t in limit) == [-5.0, 5.0]
+    assert html.index('id="flags"') < html.index('id="drift-history"') < html.index('id="history"')
+
+    single = client.get(f"/units/{FLEET.failing}").text
+    assert "Drift history needs a second calibration" in single
+    assert 'id="drift-plot"' not in single and 'id="flags"' in single

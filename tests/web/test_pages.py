@@ -188,8 +188,8 @@ def test_unit_page_shows_constants_plots_and_history(client: TestClient) -> None
     assert re.search(r"<code>r0</code></th><td class=\"num mono\">[\d.]+</td>", html)
     assert "counts</strong>" in html  # valid range in reading units
     figures = [json.loads(unescape(m)) for m in re.findall(r'data-figure="([^"]+)"', html)]
-    assert len(figures) == 2
-    curve, residuals = figures
+    assert len(figures) == 3  # two calibrations: the drift history is drawn too
+    curve, residuals, _drift = figures
     names = [t.get("name") for t in curve["data"]]
     assert {"fitted curve", "95 % prediction band", "points used", "points excluded"} <= set(names)
     assert any(str(n).startswith("earlier: ") for n in names)

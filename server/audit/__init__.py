@@ -1,0 +1,1 @@
+"""The audit log: who changed what, when."""

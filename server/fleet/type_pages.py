@@ -1,0 +1,275 @@
+"""Browser pages of sensor types: the list, one type's settings (editable by admins), and the
+progress of its refit jobs (polled by htmx while one runs)."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Annotated, Any
+from urllib.parse import quote
+
+from fastapi import APIRouter, Form, Request
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from pydantic import ValidationError
+from sqlalchemy import func, select
+
+import shared
+from server.accounts.deps import PageAdmin, PageViewer
+from server.accounts.models import ROLE_RANK, Role, User
+from server.calibrations import refits
+from server.db import SessionDep
+from server.errors import Invalid
+from server.flags.service import recompute_flags
+from server.fleet import service
+from server.fleet.models import NoiseIn, SensorType, Unit
+from server.fleet.schemas import SensorTypeUpdate
+from server.htmx import render
+
+router = APIRouter(include_in_schema=False)
+
+NUMBER_FIELDS = {  # form field -> words for errors
+    "tolerance_abs": "absolute tolerance",
+    "tolerance_rel": "relative tolerance",
+    "drift_limit_abs": "drift limit",
+    "tur": "required TUR",
+    "reading_resolution": "reading resolution",
+}
+
+
+def type_url(name: str) -> str:
+    return f"/types/{quote(name, safe='')}"
+
+
+@dataclass(frozen=True, slots=True)
+class TypeForm:
+    """The settings form as typed (kept on a re-render)."""
+
+    families: list[str]
+    family_options: str
+    tolerance_abs: str
+    tolerance_rel: str
+    drift_limit_abs: str
+    interval_days: str
+    tur: str
+    noise_in: str
+    reading_resolution: str
+    error: str | None = None
+    error_field: str | None = None
+    changed: list[str] = field(default_factory=list)
+
+    @classmethod
+    def of(cls, st: SensorType) -> TypeForm:
+        def text(x: float | None) -> str:
+            return "" if x is None else f"{x:g}"
+
+        return cls(
+            families=list(st.families),
+            family_options=json.dumps(st.family_options) if st.family_options else "",
+            tolerance_abs=text(st.tolerance_abs),
+            tolerance_rel=text(st.tolerance_rel),
+            drift_limit_abs=text(st.drift_limit_abs),
+            interval_days=str(st.interval_days),
+            tur=text(st.tur),
+            noise_in=st.noise_in.value,
+            reading_resolution=text(st.reading_resolution),
+        )
+
+
+def _number(text: str, name: str) -> float | None:
+    text = text.strip()
+    if not text:
+        return None
+    try:
+        return float(text)
+    except ValueError:
+        raise Invalid(
+            f"{NUMBER_FIELDS.get(name, name)}: {text!r} is not a number", field=name
+        ) from None
+
+
+def update_from_form(form: TypeForm) -> SensorTypeUpdate:
+    """The form as an update of every editable field; Invalid naming the field at fault."""
+    try:
+        options = json.loads(form.family_options) if form.family_options.strip() else {}
+    except json.JSONDecodeError as exc:
+        raise Invalid(f"family options are not JSON: {exc.msg}", field="family_options") from exc
+    if not isinstance(options, dict):
+        raise Invalid(
+            'family options are a JSON object, e.g. {"polynomial": {"degree": 2}}',
+            field="family_options",
+        )
+    if not form.families:
+        raise Invalid("check at least one family to fit", field="families")
+    interval = form.interval_days.strip()
+    if interval and not interval.isdigit():
+        raise Invalid(
+            f"interval: {interval!r} is not a whole number of days", field="interval_days"
+        )
+    try:
+        return SensorTypeUpdate(
+            families=form.families or None,
+            family_options=options,
+            tolerance_abs=_number(form.tolerance_abs, "tolerance_abs"),
+            tolerance_rel=_number(form.tolerance_rel, "tolerance_rel"),
+            drift_limit_abs=_number(form.drift_limit_abs, "drift_limit_abs"),
+            interval_days=int(interval) if interval else None,
+            tur=_number(form.tur, "tur"),
+            noise_in=NoiseIn(form.noise_in)
+            if form.noise_in in {n.value for n in NoiseIn}
+            else None,
+            reading_resolution=_number(form.reading_resolution, "reading_resolution"),
+        )
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        name = ".".join(str(p) for p in first["loc"])
+        what = NUMBER_FIELDS.get(name, name.replace("_", " ")) or "settings"
+        raise Invalid(f"{what}: {first['msg']}", field=name or None) from exc
+
+
+def _catalog_order(chosen: list[str]) -> list[str]:
+    """The type's families in its order, then the rest of the catalog by name."""
+    return list(chosen) + sorted(set(shared.FAMILIES) - set(chosen))
+
+
+def _context(
+    session: Any, st: SensorType, user: User, form: TypeForm, job_id: int | None = None
+) -> dict[str, Any]:
+    units = session.scalar(select(func.count()).where(Unit.sensor_type_id == st.id)) or 0
+    return {
+        "sensor_type": st,
+        "form": form,
+        "families": _catalog_order(form.families),
+        "formulas": {name: shared.get_family(name).formula for name in shared.FAMILIES},
+        "noise_choices": list(NoiseIn),
+        "units": units,
+        "jobs": refits.jobs_of(session, st),
+        "just_started": job_id,
+        "can_edit": ROLE_RANK[user.role] >= ROLE_RANK[Role.admin],
+        "type_url": type_url(st.name),
+    }
+
+
+@router.get("/types")
+def types_page(request: Request, session: SessionDep, user: PageViewer) -> HTMLResponse:
+    """Every sensor type with its tolerance, limits and interval, and how many units."""
+    counts = dict(
+        session.execute(
+            select(Unit.sensor_type_id, func.count()).group_by(Unit.sensor_type_id)
+        ).all()
+    )
+    rows = [
+        {"type": st, "units": counts.get(st.id, 0), "url": type_url(st.name)}
+        for st in service.list_sensor_types(session)
+    ]
+    return render(request, "fleet/types.html", block="main", rows=rows)
+
+
+@router.get("/types/{name}")
+def type_page(
+    request: Request, name: str, session: SessionDep, user: PageViewer, job: int | None = None
+) -> HTMLResponse:
+    """One type: its settings (a form for admins) and its refit jobs."""
+    st = service.get_sensor_type(session, name)
+    return render(
+        request,
+        "fleet/type.html",
+        block="main",
+        **_context(session, st, user, TypeForm.of(st), job),
+    )
+
+
+@router.post("/types/{name}")
+def edit_type(
+    request: Request,
+    name: str,
+    session: SessionDep,
+    user: PageAdmin,
+    families: Annotated[list[str] | None, Form()] = None,
+    family_options: Annotated[str, Form()] = "",
+    tolerance_abs: Annotated[str, Form()] = "",
+    tolerance_rel: Annotated[str, Form()] = "",
+    drift_limit_abs: Annotated[str, Form()] = "",
+    interval_days: Annotated[str, Form()] = "",
+    tur: Annotated[str, Form()] = "",
+    noise_in: Annotated[str, Form()] = "",
+    reading_resolution: Annotated[str, Form()] = "",
+) -> Response:
+    """Save the settings; a change to fitting or acceptance starts a refit job, which the page
+    then shows; a form to fix (422) when the settings cannot be used."""
+    st = service.get_sensor_type(session, name)
+    form = TypeForm(
+        families=list(families or []),
+        family_options=family_options,
+        tolerance_abs=tolerance_abs,
+        tolerance_rel=tolerance_rel,
+        drift_limit_abs=drift_limit_abs,
+        interval_days=interval_days,
+        tur=tur,
+        noise_in=noise_in,
+        reading_resolution=reading_resolution,
+    )
+    try:
+        change = service.update_sensor_type(session, st, update_from_form(form), actor=user.name)
+    except Invalid as exc:
+        session.rollback()
+        st = service.get_sensor_type(session, name)
+        bad = TypeForm(**{**_fields(form), "error": exc.message, "error_field": exc.field})
+        return render(
+            request,
+            "fleet/type.html",
+            block="main",
+            status_code=422,
+            **_context(session, st, user, bad),
+        )
+    job = None
+    if change.needs_refit:
+        job = refits.start_refit(session, st, change.describe(), user.name)
+    elif change.needs_recompute:
+        recompute_flags(session, st)
+    session.commit()
+    if job is not None:
+        request.app.state.jobs.submit(job.id)
+    where = type_url(st.name) + (f"?job={job.id}" if job else "?saved=1")
+    return RedirectResponse(where, status_code=303)
+
+
+def _fields(form: TypeForm) -> dict[str, Any]:
+    return {
+        "families": form.families,
+        "family_options": form.family_options,
+        "tolerance_abs": form.tolerance_abs,
+        "tolerance_rel": form.tolerance_rel,
+        "drift_limit_abs": form.drift_limit_abs,
+        "interval_days": form.interval_days,
+        "tur": form.tur,
+        "noise_in": form.noise_in,
+        "reading_resolution": form.reading_resolution,
+    }
+
+
+@router.post("/types/{name}/refit")
+def refit_type(request: Request, name: str, session: SessionDep, user: PageAdmin) -> Response:
+    """Refit every calibration of the type with its current settings (previous fits kept)."""
+    st = service.get_sensor_type(session, name)
+    job = refits.start_refit(session, st, "refit requested", user.name)
+    session.commit()
+    request.app.state.jobs.submit(job.id)
+    return RedirectResponse(f"{type_url(st.name)}?job={job.id}", status_code=303)
+
+
+@router.get("/types/{name}/jobs/{job_id}")
+def job_status(
+    request: Request, name: str, job_id: int, session: SessionDep, user: PageViewer
+) -> HTMLResponse:
+    """One job's progress: the ``job`` block for htmx polling, the type page otherwise."""
+    st = service.get_sensor_type(session, name)
+    job = refits.get_job(session, job_id)
+    if job.sensor_type_id != st.id:
+        raise Invalid(f"job {job_id} is not a refit of {st.name}", field="job")
+    return render(
+        request,
+        "fleet/type.html",
+        block="job",
+        job=job,
+        **_context(session, st, user, TypeForm.of(st), job_id),
+    )
