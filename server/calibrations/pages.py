@@ -11,21 +11,24 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from pydantic import ValidationError
+from sqlalchemy.orm import object_session
 
 import shared
 from server.accounts.deps import PageTechnician, PageViewer
 from server.accounts.models import ROLE_RANK, Role, User
+from server.audit import service as audit
 from server.calibrations import charts, service
 from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
 from server.db import SessionDep
-from server.errors import Invalid
+from server.errors import Conflict, Invalid
 from server.exports.service import header_problem
 from server.flags.charts import drift_history_figure
 from server.flags.panels import unit_panels
 from server.flags.service import recompute_flags
-from server.fleet.models import SensorType, Unit
+from server.fleet.models import SensorType, Unit, UnitStatus
 from server.fleet.pages import unit_url
+from server.fleet.schemas import UnitUpdate
 from server.fleet.service import (
     NotComparable,
     drift_history,
@@ -33,6 +36,7 @@ from server.fleet.service import (
     due_on,
     get_unit,
     unit_due,
+    update_unit,
 )
 from server.formatting import residual_decimals
 from server.htmx import is_partial, render
@@ -40,6 +44,12 @@ from server.htmx import is_partial, render
 router = APIRouter(include_in_schema=False)
 
 EARLIER_SHOWN = 5  # earlier calibrations overlaid on the curve plot
+STATUS_MOVES = {  # where a unit can go from the unit page (installing is an installation event)
+    UnitStatus.in_stock: [UnitStatus.quarantined, UnitStatus.retired],
+    UnitStatus.quarantined: [UnitStatus.in_stock, UnitStatus.retired],
+    UnitStatus.retired: [UnitStatus.in_stock],
+    UnitStatus.installed: [],
+}
 SEPARATORS = re.compile(r"[,;\t ]+")
 HEADER = re.compile(r"[A-Za-z]{2,}")  # words, not an exponent such as 1e3
 DATETIME_LOCAL = "%Y-%m-%dT%H:%M"
@@ -274,6 +284,12 @@ def unit_context(
             }
         )
     ctx["history"] = history
+    ctx["void_error"] = None
+    ctx["void_for"] = None
+    ctx["status_moves"] = STATUS_MOVES.get(unit.status, [])
+    ctx["status_error"] = None
+    db = object_session(unit)
+    ctx["changes"] = audit.entries_of_unit(db, unit.serial) if db is not None else []
     ctx.update(drift_context(unit))
     ctx.update(unit_panels(unit))
     ctx["just_saved"] = next((h for h in history if h["record"].id == saved), None)
@@ -405,6 +421,64 @@ def unit_page(
         status_code=422 if ctx["budget_error"] else 200,
         **ctx,
     )
+
+
+@router.post("/units/{serial}/calibrations/{session_id}/void")
+def void_calibration(
+    request: Request,
+    serial: str,
+    session_id: int,
+    session: SessionDep,
+    user: PageTechnician,
+    reason: Annotated[str, Form()] = "",
+) -> Response:
+    """Void a mistaken calibration with a reason (kept, struck out); the page again, or the
+    page with the reason to fix (422)."""
+    unit = get_unit(session, serial)
+    record = service.get_session_of(unit, session_id)
+    try:
+        service.void_session(session, record, reason, user.name)
+    except (Invalid, Conflict) as exc:
+        session.rollback()
+        unit = get_unit(session, serial)
+        ctx = unit_context(unit, user, blank_form(unit, user))
+        ctx.update(void_error=exc.message, void_for=session_id)
+        return render(request, "units/page.html", block="unit", status_code=422, **ctx)
+    recompute_flags(session, unit.sensor_type)
+    session.commit()
+    return RedirectResponse(f"{unit_url(unit.serial)}#history", status_code=303)
+
+
+@router.post("/units/{serial}/status")
+def change_status(
+    request: Request,
+    serial: str,
+    session: SessionDep,
+    user: PageTechnician,
+    status: Annotated[str, Form()] = "",
+) -> Response:
+    """Quarantine, retire or return the unit to stock; flags of its type follow."""
+    unit = get_unit(session, serial)
+    try:
+        moves = STATUS_MOVES.get(unit.status, [])
+        if status not in {m.value for m in moves}:
+            raise Invalid(
+                f"{unit.serial} is {unit.status.value.replace('_', ' ')}; it can go to "
+                + (", ".join(m.value.replace("_", " ") for m in moves) or "nothing from here")
+                + (" (record its removal under Installations first)" if not moves else ""),
+                field="status",
+            )
+        changed = update_unit(session, unit, UnitUpdate(status=UnitStatus(status)), user.name)
+    except Invalid as exc:
+        session.rollback()
+        unit = get_unit(session, serial)
+        ctx = unit_context(unit, user, blank_form(unit, user))
+        ctx["status_error"] = exc.message
+        return render(request, "units/page.html", block="unit", status_code=422, **ctx)
+    if changed:
+        recompute_flags(session, unit.sensor_type)
+    session.commit()
+    return RedirectResponse(unit_url(unit.serial), status_code=303)
 
 
 @router.post("/units/{serial}/calibrations")

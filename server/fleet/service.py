@@ -185,7 +185,7 @@ def create_unit(session: Session, data: UnitCreate, actor: str | None = None) ->
         "unit.registered",
         "unit",
         unit.serial,
-        f"{unit.serial} registered as a {sensor_type.name}",
+        f"{unit.serial} registered ({sensor_type.name})",
         received_on=unit.received_on,
         notes=unit.notes,
     )
