@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import os
 import uuid
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 
 import pytest
@@ -63,8 +63,27 @@ def db_url(request: pytest.FixtureRequest, tmp_path) -> Iterator[str]:
             yield url
 
 
+FIGURES: list[str] = []  # what simulation tests measured, shown at the end of the run
+
+
+@pytest.fixture
+def figures() -> Callable[[str], None]:
+    """Report a measured figure (e.g. a simulated coverage): printed at the end of the run, in
+    the "measured figures" section, whether or not output is captured."""
+
+    def report(text: str) -> None:
+        FIGURES.append(text.strip("\n"))
+
+    return report
+
+
 def pytest_terminal_summary(terminalreporter, exitstatus, config) -> None:
-    """Say how many PostgreSQL and browser tests actually ran (CI logs show it)."""
+    """The measured figures, and how many PostgreSQL and browser tests actually ran (CI logs
+    show both)."""
+    if FIGURES:
+        terminalreporter.section("measured figures")
+        for text in FIGURES:
+            terminalreporter.write_line(text)
     counts: dict[str, dict[str, int]] = {"postgres": {}, "browser": {}}
     for outcome in ("passed", "failed", "skipped", "error"):
         for report in terminalreporter.stats.get(outcome, []):

@@ -108,13 +108,13 @@ def _coverage_rtd() -> float:
 
 
 @pytest.mark.parametrize("family", sorted(CASES))
-def test_prediction_interval_covers_95_percent(family: str) -> None:
+def test_prediction_interval_covers_95_percent(family: str, figures) -> None:
     covered = _coverage(family)
-    print(f"{family}: 95 % prediction interval covered {covered:.3f}")
+    figures(f"{family}: 95 % prediction interval covered {covered:.3f}")
     assert covered == pytest.approx(0.95, abs=TOL)
 
 
-def test_rtd_prediction_interval_covers_95_percent_with_noise_in_resistance() -> None:
+def test_rtd_prediction_interval_covers_95_percent_with_noise_in_resistance(figures) -> None:
     covered = _coverage_rtd()
-    print(f"callendar_van_dusen: 95 % prediction interval covered {covered:.3f}")
+    figures(f"callendar_van_dusen: 95 % prediction interval covered {covered:.3f}")
     assert covered == pytest.approx(0.95, abs=TOL)

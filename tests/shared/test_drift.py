@@ -231,7 +231,7 @@ def test_compare_is_reproducible() -> None:
 DRIFT_LIMIT = 0.02 * SPAN_MM  # 2 % of span = 14.4 mm; the drifted units moved 5 % = 36 mm
 
 
-def test_simulated_drift_sensitivity_and_false_alarms() -> None:
+def test_simulated_drift_sensitivity_and_false_alarms(figures) -> None:
     units = simulate()
     results = {u.serial: compare(u.fit_1, u.fit_2, drift_limit=DRIFT_LIMIT) for u in units}
     drifted = [u.serial for u in units if u.kind == "drifted"]
@@ -249,7 +249,7 @@ def test_simulated_drift_sensitivity_and_false_alarms() -> None:
     naive_any = rate(steady, lambda r: np.max(np.abs(r.deviation) / (2 * r.sd)) > 1)
     naive_flag = rate(steady, lambda r: r.exceeds_limit and abs(r.en_at_max) > 1)
     crit = np.median([r.critical for r in results.values()])
-    print(
+    figures(
         f"\ndrift ({len(units)} units, drift {DRIFT_MM:g} mm = 5 % of span, limit "
         f"{DRIFT_LIMIT:g} mm = 2 % of span, median simultaneous critical {crit:.3f}):"
         f"\n  sensitivity (drifted flagged) {sensitivity:.1%} of {len(drifted)}"
@@ -273,7 +273,7 @@ def test_simulated_drift_sensitivity_and_false_alarms() -> None:
     assert significant <= 0.05 + 3 * np.sqrt(0.05 * 0.95 / len(steady))
 
 
-def test_near_the_noise_the_limit_alone_would_flag_steady_units() -> None:
+def test_near_the_noise_the_limit_alone_would_flag_steady_units(figures) -> None:
     # single ADC samples (2 counts, no averaging): at 800 mm one count is about 13 mm, so two
     # calibrations of a steady unit often differ by more than the 14.4 mm limit at the far end
     rng = np.random.default_rng(4317)
@@ -291,7 +291,7 @@ def test_near_the_noise_the_limit_alone_would_flag_steady_units() -> None:
     beyond = sum(bool(r.exceeds_limit) for r in results) / n
     significant = sum(r.significant for r in results) / n
     flagged = sum(r.drifted for r in results) / n
-    print(
+    figures(
         f"\nsteady units, single 2-count samples ({n}): beyond the {DRIFT_LIMIT:g} mm limit "
         f"{beyond:.1%}; significant {significant:.1%}; drifted (both) {flagged:.1%}"
     )

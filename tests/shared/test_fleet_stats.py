@@ -211,7 +211,7 @@ def test_fleet_outliers_refuse_bad_requests() -> None:
 
 
 # -- fleet outliers, simulated ------------------------------------------------------------------
-def test_simulated_fleet_outliers_are_found() -> None:
+def test_simulated_fleet_outliers_are_found(figures) -> None:
     units = simulate()
     kinds = {u.serial: u.kind for u in units}
     defective = {s for s, k in kinds.items() if k == "defective"}
@@ -222,7 +222,7 @@ def test_simulated_fleet_outliers_are_found() -> None:
         found = defective & set(result.flagged)
         false = [s for s in result.flagged if s not in defective]
         rate = len(false) / len(normal)
-        print(
+        figures(
             f"\nfleet outliers ({method}), {len(units)} units: {len(found)}/{len(defective)} "
             f"defective flagged (smallest |z| "
             f"{min(result.units[s].max_abs_z for s in defective):.1f}); false outliers "
