@@ -618,13 +618,13 @@ def _configure_fit(parser: argparse.ArgumentParser) -> None:
 # -- export --------------------------------------------------------------------------------------
 
 
-def _step(text: str) -> int:
+def _step(text: str) -> float:
     try:
-        step = int(text)
+        step = float(text)
     except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if step < 1:
-        raise argparse.ArgumentTypeError(f"the step must be at least 1, not {step}")
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not (step > 0 and step != float("inf")):
+        raise argparse.ArgumentTypeError(f"the step must be a positive number, not {text}")
     return step
 
 
@@ -666,9 +666,10 @@ def _configure_export(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--step",
         type=_step,
-        default=1,
-        metavar="N",
-        help="table rows every N reading units over the type's reading span (default 1)",
+        default=None,
+        metavar="STEP",
+        help="table rows every STEP reading units over the type's reading span (default: every "
+        "code for whole-code readings, else the smallest 1-2-5 step giving at most 200 rows)",
     )
     parser.add_argument("--output", metavar="FILE", help="write to FILE instead of standard output")
     _db_option(parser)

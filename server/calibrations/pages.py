@@ -22,7 +22,7 @@ from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
 from server.db import SessionDep
 from server.errors import Conflict, Invalid
-from server.exports.service import header_problem
+from server.exports.service import default_step, header_problem
 from server.flags.charts import drift_history_figure
 from server.flags.panels import unit_panels
 from server.flags.service import recompute_flags
@@ -271,6 +271,7 @@ def unit_context(
         "budget_error": None,
         "budget_reading": (reading or "").strip(),
         "header_problem": header_problem(sensor_type),
+        "table_step": default_step(sensor_type),
     }
     history = []
     for record in sorted(unit.sessions, key=lambda s: (s.performed_at, s.id), reverse=True):

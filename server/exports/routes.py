@@ -17,7 +17,15 @@ from server.fleet.service import get_unit
 
 router = APIRouter(prefix="/api/v1", tags=["exports"])
 
-Step = Annotated[int, Query(ge=1, description="reading units between rows (default 1: every code)")]
+Step = Annotated[
+    float | None,
+    Query(
+        gt=0,
+        allow_inf_nan=False,
+        description="reading units between rows; default: 1 (every code) for a type read in "
+        "whole codes, else the smallest 1-2-5 step giving at most 200 rows",
+    ),
+]
 ReadingMin = Annotated[
     float | None,
     Query(allow_inf_nan=False, description="first row; default: the sensor type's reading_min"),
@@ -49,7 +57,7 @@ LutMaxError = Annotated[
 class TableQuery:
     """The query of a conversion-table download (API and page alike)."""
 
-    step: Step = 1
+    step: Step = None
     reading_min: ReadingMin = None
     reading_max: ReadingMax = None
     level: Level = None

@@ -70,9 +70,24 @@ def header_problem(sensor_type: SensorType) -> str | None:
     )
 
 
+DEFAULT_ROWS = 200  # at most this many rows by default when a type's readings are not whole codes
+
+
+def default_step(sensor_type: SensorType) -> float:
+    """Rows of a conversion table by default: every code for a span of whole codes, else the
+    smallest 1-2-5 step giving at most ``DEFAULT_ROWS`` rows (0.02 mV/V over 0..2.2 mV/V)."""
+    if header_problem(sensor_type) is None:
+        return 1.0
+    span = float(sensor_type.reading_max) - float(sensor_type.reading_min)
+    rough = span / DEFAULT_ROWS
+    decade = 10.0 ** math.floor(math.log10(rough))
+    factor = next(f for f in (1.0, 2.0, 5.0, 10.0) if f * decade >= rough)
+    return float(f"{factor * decade:.12g}")
+
+
 def _table(
     unit: Unit,
-    step: int,
+    step: float | None,
     reading_min: float | None,
     reading_max: float | None,
     level: float | None,
@@ -85,6 +100,7 @@ def _table(
         raise Invalid("reading_min and reading_max must be finite numbers", field="reading_min")
     if hi < lo:
         raise Invalid(f"reading_max {hi:g} is below reading_min {lo:g}", field="reading_max")
+    step = default_step(sensor_type) if step is None else step
     try:
         return conversion_table(fit, lo, hi, step, level=level)
     except shared.BadInput as exc:
@@ -100,7 +116,7 @@ TABLE_FORMATS = {
 def table_download(
     unit: Unit,
     fmt: str,
-    step: int = 1,
+    step: float | None = None,
     reading_min: float | None = None,
     reading_max: float | None = None,
     level: float | None = None,

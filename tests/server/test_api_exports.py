@@ -70,8 +70,8 @@ def test_table_json_with_step_and_range(client, viewer, pot):
 
 @pytest.mark.parametrize(
     ("params", "field"),
-    [({"step": 0}, "step"), ({"step": "1.5"}, "step"), ({"reading_min": 10, "reading_max": 5},
-     "reading_max")],
+    [({"step": 0}, "step"), ({"step": "-1.5"}, "step"), ({"step": "nan"}, "step"),
+     ({"reading_min": 10, "reading_max": 5}, "reading_max")],
 )  # fmt: skip
 def test_table_bad_inputs_are_422_naming_the_field(client, viewer, pot, params, field):
     answer = client.get(f"/api/v1/units/{pot}/table.csv", params=params, headers=viewer)
@@ -119,7 +119,17 @@ def test_header_needs_an_integer_reading_span(client, admin, technician, viewer)
     assert refused.status_code == 422
     assert "integer reading codes" in refused.json()["detail"]
     assert "0 to 2.2 mV/V" in refused.json()["detail"]
-    assert client.get(f"/api/v1/units/{serial}/table.csv", headers=viewer).status_code == 200
+    table = client.get(f"/api/v1/units/{serial}/table.json", headers=viewer)
+    assert table.status_code == 200
+    readings = [r["reading"] for r in table.json()["rows"]]
+    # not whole codes: by default the smallest 1-2-5 step giving at most 200 rows: 2.2 / 200 =
+    # 0.011 mV/V, so 0.02 mV/V and 111 rows
+    assert readings[:3] == pytest.approx([0.0, 0.02, 0.04])
+    assert len(readings) == 111 and readings[-1] == pytest.approx(2.2)
+    fine = client.get(
+        f"/api/v1/units/{serial}/table.json", params={"step": 0.25}, headers=viewer
+    ).json()
+    assert [r["reading"] for r in fine["rows"]] == pytest.approx([0.25 * i for i in range(9)])
 
 
 def test_exports_need_a_token_and_are_in_the_openapi_schema(client, pot):
@@ -130,7 +140,8 @@ def test_exports_need_a_token_and_are_in_the_openapi_schema(client, pot):
     assert "text/csv" in csv_op["responses"]["200"]["content"]
     assert {p["name"] for p in csv_op["parameters"]} >= {"step", "reading_min", "reading_max"}
     step = next(p for p in csv_op["parameters"] if p["name"] == "step")
-    assert step["schema"]["type"] == "integer" and step["schema"]["minimum"] == 1
+    number = next(s for s in step["schema"]["anyOf"] if s.get("type") == "number")
+    assert number["exclusiveMinimum"] == 0
     json_op = paths["/api/v1/units/{serial}/table.json"]["get"]
     ref = json_op["responses"]["200"]["content"]["application/json"]["schema"]["$ref"]
     assert ref.endswith("/ConversionTableRead")

@@ -458,4 +458,4 @@ def test_export_mistakes_say_error_and_exit_2(capsys, sqlite_url) -> None:
     code, _, err = run(
         capsys, "export", "IR-0001", "--format", "csv", "--step", "0", "--db", sqlite_url
     )
-    assert code == 2 and "at least 1" in err
+    assert code == 2 and "positive number" in err
