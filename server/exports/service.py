@@ -19,6 +19,7 @@ from shared.exports import Table, c_header, conversion_table, table_to_csv, tabl
 
 REPORT_PLOT_WIDTH = 640  # px (~169 mm): fits the printable width of A4 and Letter
 REPORT_PLOT_HEIGHT = 380
+REPORT_RESIDUAL_HEIGHT = 300
 
 
 @dataclass(frozen=True, slots=True)
@@ -175,9 +176,16 @@ def report_context(unit: Unit, session_id: int) -> dict[str, Any]:
     sensor_type = unit.sensor_type
     axes = charts.Axes(sensor_type.quantity, sensor_type.value_unit, sensor_type.reading_unit)
     figure = charts.curve_figure(fit, axes)
-    figure.update_layout(
-        width=REPORT_PLOT_WIDTH, height=REPORT_PLOT_HEIGHT, autosize=False, hovermode=False
+    suspects = {s.index: s.reason for s in calibration.suspects}
+    residuals = charts.residual_figure(
+        fit,
+        axes,
+        tolerance_abs=sensor_type.tolerance_abs,
+        tolerance_rel=sensor_type.tolerance_rel,
+        suspects=suspects,
     )
+    for fig, height in ((figure, REPORT_PLOT_HEIGHT), (residuals, REPORT_RESIDUAL_HEIGHT)):
+        fig.update_layout(width=REPORT_PLOT_WIDTH, height=height, autosize=False, hovermode=False)
     current = latest_session(unit.sessions)
     return {
         "unit": unit,
@@ -187,5 +195,6 @@ def report_context(unit: Unit, session_id: int) -> dict[str, Any]:
         "is_current": current is not None and current.id == record.id,
         "value_range": tuple(float(v) for v in fit.to_value(list(fit.valid_range))),
         "curve_json": figure.to_json(),
+        "residual_json": residuals.to_json(),
         "residual_format": f"%.{residual_decimals(fit.rse)}f",
     }

@@ -238,6 +238,8 @@ def test_report_prints_to_pdf_on_a4_and_letter(
     page.wait_for_url(re.compile(rf"/units/{fleet.calibrated}/calibrations/\d+/report$"))
     page.wait_for_selector("#report-plot.js-plotly-plot .main-svg")
     assert page.locator("#report-plot .scatterlayer .trace").count() >= 3
+    page.wait_for_selector("#report-residuals.js-plotly-plot .main-svg")
+    assert page.locator("#report-residuals .scatterlayer .trace").count() >= 3  # points, ±tol
     assert page.locator(".modebar").count() == 0  # static: no mode bar
     page.screenshot(path=artifacts / "report.png", full_page=True)
     page.emulate_media(media="print")
@@ -248,6 +250,10 @@ def test_report_prints_to_pdf_on_a4_and_letter(
         "document.querySelector('#report-plot .main-svg').getBoundingClientRect().width"
     )
     assert width <= 180 / 25.4 * 96
+    width = page.evaluate(
+        "document.querySelector('#report-residuals .main-svg').getBoundingClientRect().width"
+    )
+    assert width <= 180 / 25.4 * 96
     for paper in ("A4", "Letter"):
         data = page.pdf(format=paper, print_background=True)
         (artifacts / f"report-{paper.lower()}.pdf").write_bytes(data)
@@ -256,7 +262,7 @@ def test_report_prints_to_pdf_on_a4_and_letter(
         flat = " ".join(text.split())
         assert 1 <= pages <= 4, pages
         assert fleet.calibrated in flat
-        assert "PASS" in flat
+        assert "PASS" in flat and "Residuals and tolerance" in flat
         assert "do not on their own make a calibration accredited or traceable" in flat
         assert "Sign out" not in flat and "scan or type a serial" not in flat
 
