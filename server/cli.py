@@ -787,7 +787,7 @@ def _import(args: argparse.Namespace) -> int:
             raise Invalid(
                 f"{_import_field(exc.field, source)}: {exc.message}", field=exc.field
             ) from None
-        recompute_flags(session, unit.sensor_type)
+        recompute_flags(session, unit.sensor_type, units=[unit])
         session.commit()
         found = calibrations.calibration_read(record)
         open_flags = [f for f in flags_of(unit) if f.open]

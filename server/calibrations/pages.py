@@ -445,7 +445,7 @@ def void_calibration(
         ctx = unit_context(unit, user, blank_form(unit, user))
         ctx.update(void_error=exc.message, void_for=session_id)
         return render(request, "units/page.html", block="unit", status_code=422, **ctx)
-    recompute_flags(session, unit.sensor_type)
+    recompute_flags(session, unit.sensor_type, units=[unit])
     session.commit()
     return RedirectResponse(f"{unit_url(unit.serial)}#history", status_code=303)
 
@@ -477,7 +477,7 @@ def change_status(
         ctx["status_error"] = exc.message
         return render(request, "units/page.html", block="unit", status_code=422, **ctx)
     if changed:
-        recompute_flags(session, unit.sensor_type)
+        recompute_flags(session, unit.sensor_type, units=[unit])
     session.commit()
     return RedirectResponse(unit_url(unit.serial), status_code=303)
 
@@ -521,7 +521,7 @@ def add_calibration(
         record = service.run_calibration(
             session, unit, calibration_from_form(form), recorded_by=user.name
         )
-        recompute_flags(session, unit.sensor_type)
+        recompute_flags(session, unit.sensor_type, units=[unit])
     except Invalid as exc:
         session.rollback()
         unit = get_unit(session, serial)

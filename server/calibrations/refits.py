@@ -25,6 +25,7 @@ from __future__ import annotations
 import logging
 import threading
 import time
+from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
@@ -348,19 +349,45 @@ def run_refit(factory: sessionmaker[Session], job_id: int) -> None:
 
 
 class JobRunner:
-    """One worker thread per app: jobs run one after another, in the order submitted."""
+    """One worker thread per app: jobs (and periodic chores, see ``every``) run one after
+    another, in the order submitted, so they never write the database at the same time."""
 
     def __init__(self, factory: sessionmaker[Session]) -> None:
         self._factory = factory
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="sensorledger-job")
         self._lock = threading.Lock()
         self._pending: list[Future[None]] = []
+        self._stop = threading.Event()
+        self._tickers: list[threading.Thread] = []
 
     def submit(self, job_id: int) -> Future[None]:
+        return self._queue(run_refit, self._factory, job_id)
+
+    def _queue(self, fn: Callable[..., None], *args: Any) -> Future[None]:
         with self._lock:
-            future = self._pool.submit(run_refit, self._factory, job_id)
+            future = self._pool.submit(fn, *args)
             self._pending = [f for f in self._pending if not f.done()] + [future]
         return future
+
+    def every(self, seconds: float, chore: Callable[[Session], object], name: str) -> None:
+        """Queue ``chore(session)`` (then commit) every ``seconds`` until shutdown; a chore that
+        fails is logged and tried again next time."""
+
+        def run() -> None:
+            try:
+                with self._factory() as session:
+                    chore(session)
+                    session.commit()
+            except Exception:
+                log.exception("%s failed", name)
+
+        def tick() -> None:
+            while not self._stop.wait(seconds):
+                self._queue(run)
+
+        ticker = threading.Thread(target=tick, name=f"sensorledger-{name}", daemon=True)
+        ticker.start()
+        self._tickers.append(ticker)
 
     def wait(self, timeout: float | None = None) -> None:
         """Wait for the jobs submitted so far (tests, shutdown)."""
@@ -370,4 +397,7 @@ class JobRunner:
             future.result(timeout)
 
     def shutdown(self) -> None:
+        self._stop.set()
+        for ticker in self._tickers:
+            ticker.join()
         self._pool.shutdown(wait=True, cancel_futures=False)

@@ -35,7 +35,7 @@ def create_calibration(
     """Store a calibration session, fit it server-side and judge it against the tolerance."""
     unit = get_unit(session, serial)
     record = service.run_calibration(session, unit, data, recorded_by=user.name)
-    recompute_flags(session, unit.sensor_type)
+    recompute_flags(session, unit.sensor_type, units=[unit])
     session.commit()
     return service.calibration_read(record).model_copy(update={"flags": open_flags(unit)})
 
@@ -100,7 +100,7 @@ def void_calibration(
     unit = get_unit(session, serial)
     record = service.get_session_of(unit, session_id)
     service.void_session(session, record, data.reason, user.name)
-    recompute_flags(session, unit.sensor_type)
+    recompute_flags(session, unit.sensor_type, units=[unit])
     session.commit()
     return service.calibration_read(record)
 

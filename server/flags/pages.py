@@ -170,7 +170,7 @@ def add_event(
             field = ".".join(str(p) for p in first["loc"])
             raise Invalid(f"{field}: {first['msg']}", field=field) from None
         service.create_event(session, unit, data, recorded_by=user.name)
-        service.recompute_flags(session, unit.sensor_type)
+        service.recompute_flags(session, unit.sensor_type, units=[unit])
     except Invalid as exc:
         session.rollback()
         unit = get_unit(session, serial)

@@ -60,7 +60,7 @@ def create_event(
     """Record a unit installed at a location or removed (technician); flags are recomputed."""
     unit = get_unit(session, serial)
     event = service.create_event(session, unit, data, recorded_by=user.name)
-    service.recompute_flags(session, unit.sensor_type)
+    service.recompute_flags(session, unit.sensor_type, units=[unit])
     session.commit()
     return service.event_read(event)
 

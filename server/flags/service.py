@@ -502,9 +502,13 @@ def _units_of(session: Session, sensor_type: SensorType) -> list[Unit]:
 
 
 def find_conditions(
-    session: Session, sensor_type: SensorType, today: date | None = None
+    session: Session,
+    sensor_type: SensorType,
+    today: date | None = None,
+    only: set[int] | None = None,
 ) -> list[Found]:
-    """Every condition that holds now for the units of ``sensor_type``."""
+    """Every condition that holds now for the units of ``sensor_type``; with ``only`` (unit ids)
+    the per-unit conditions of those units alone, and the fleet outliers of the whole type."""
     today = today or utcnow().date()
     units = [u for u in _units_of(session, sensor_type) if u.status is not UnitStatus.retired]
     events: dict[int, list[InstallationEvent]] = {u.id: [] for u in units}
@@ -524,6 +528,8 @@ def find_conditions(
             continue
         last = valid[-1]
         current[unit.serial] = (unit, last)
+        if only is not None and unit.id not in only:
+            continue
         for item in (
             _failed(unit, last, sensor_type.value_unit),
             _overdue(unit, last, sensor_type, today),
@@ -543,16 +549,27 @@ def find_conditions(
 
 
 def recompute_flags(
-    session: Session, sensor_type: SensorType, *, today: date | None = None
+    session: Session,
+    sensor_type: SensorType,
+    *,
+    today: date | None = None,
+    units: list[Unit] | None = None,
 ) -> list[Flag]:
-    """Raise, refresh and close the flags of every unit of ``sensor_type``; the open ones."""
+    """Raise, refresh and close the flags of the units of ``sensor_type``; the open ones.
+
+    With ``units`` (a calibration, void, event or status change of those units) only their own
+    flags and due dates are recomputed, and the fleet outliers of the whole type (a unit's
+    drift, as-found and due date depend on its own sessions alone); without, every flag of the
+    type (an edit or refit of the type, the demo load, the overdue sweep)."""
     now = utcnow()
-    found = {f.key: f for f in find_conditions(session, sensor_type, today)}
+    only = None if units is None else {u.id for u in units}
+    found = {f.key: f for f in find_conditions(session, sensor_type, today, only)}
     existing = {
         f.key: f
         for f in session.scalars(
             select(Flag).join(Flag.unit).where(Unit.sensor_type_id == sensor_type.id)
         )
+        if only is None or f.unit_id in only or f.kind is FlagKind.fleet_outlier
     }
     for key, gone in existing.items():
         if key not in found and gone.open:
@@ -574,6 +591,47 @@ def recompute_all(session: Session, *, today: date | None = None) -> None:
     """``recompute_flags`` for every sensor type."""
     for sensor_type in session.scalars(select(SensorType).order_by(SensorType.name)):
         recompute_flags(session, sensor_type, today=today)
+
+
+def sweep_overdue(session: Session, *, today: date | None = None) -> int:
+    """Raise the overdue flags that time alone has brought (no calibration or event since):
+    units in service whose stored due date has passed without an open overdue flag, or whose
+    overdue warning has become an action; their flags are recomputed. How many units. One
+    query when there are none; the app runs it on start and every hour."""
+    today = today or utcnow().date()
+    late = list(
+        session.scalars(
+            select(Unit).where(
+                Unit.due_on.is_not(None),
+                Unit.due_on < today,
+                Unit.status.in_([UnitStatus.in_stock, UnitStatus.installed]),
+            )
+        )
+    )
+    if not late:
+        return 0
+    flagged = {
+        f.unit_id: f
+        for f in session.scalars(
+            select(Flag).where(
+                Flag.kind == FlagKind.overdue,
+                Flag.open.is_(True),
+                Flag.unit_id.in_([u.id for u in late]),
+            )
+        )
+    }
+    stale: dict[int, list[Unit]] = {}
+    for unit in late:
+        assert unit.due_on is not None
+        flag = flagged.get(unit.id)
+        should_act = (today - unit.due_on).days > OVERDUE_ACTION_DAYS
+        if flag is None or (should_act and flag.severity is not Severity.action):
+            stale.setdefault(unit.sensor_type_id, []).append(unit)
+    for sensor_type_id, units in stale.items():
+        sensor_type = session.get(SensorType, sensor_type_id)
+        if sensor_type is not None:
+            recompute_flags(session, sensor_type, today=today, units=units)
+    return sum(len(u) for u in stale.values())
 
 
 def bring_due_dates_up(session: Session) -> int:

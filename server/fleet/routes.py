@@ -158,6 +158,6 @@ def update_unit(
     unit = service.get_unit(session, serial)
     changed = service.update_unit(session, unit, data, actor=user.name)
     if "status" in changed:
-        recompute_flags(session, unit.sensor_type)
+        recompute_flags(session, unit.sensor_type, units=[unit])
     session.commit()
     return service.unit_read(service.get_unit(session, serial))

@@ -261,6 +261,9 @@ def main() -> int:
     cases = [line_case(rng), inverse_offset_case(rng), fleet_case(rng)]
     fleet, informative = batch_fleet_case(np.random.default_rng(20240602))
     cases.append(fleet)
+    from tests.bench.flags_bench import flags_case  # builds a 200-unit database (~1 min)
+
+    cases.append(flags_case())
     print(
         f"sensorledger engine {ENGINE_VERSION} benchmark - Python {platform.python_version()}, "
         f"numpy {np.__version__}, scipy {scipy.__version__}\n"
@@ -275,6 +278,8 @@ def main() -> int:
         "converges\n"
         "ours also computes the covariance, fold-back detection and the monotonicity check;\n"
         "  curve_fit its covariance (pcov).\n"
+        "flags case: recompute_flags for the saved unit (and the type's fleet outliers) against\n"
+        "  the whole type's recompute, on a 200-unit SQLite file (tests/bench/flags_bench.py)\n"
         "time per call, best of a few repeats (time.perf_counter); ratio = ours / baseline,\n"
         "speed-up = baseline / ours\n"
     )
@@ -304,7 +309,7 @@ def main() -> int:
     for case in cases:
         same = case.agreement <= AGREE_REL
         ok &= same
-        verdict = "same parameters" if same else "MISMATCH"
+        verdict = "same results" if same else "MISMATCH"
         print(
             f"{case.name:<40}: {verdict} (max relative difference {case.agreement:.1e}, "
             f"limit {AGREE_REL:.0e})"

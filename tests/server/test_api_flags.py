@@ -320,3 +320,54 @@ def test_steady_drift_brings_the_due_date_forward(client, viewer, technician, sh
     o1 = r.json()
     assert o1["due_on"] == ((NOW - timedelta(days=400)).date() + timedelta(days=365)).isoformat()
     assert o1["due_basis"].startswith("interval only (365 days)")
+
+
+def test_recomputing_one_unit_leaves_the_flags_a_full_recompute_gives(client, app, viewer, shop):
+    """Saves and events recompute the flags of their unit only (and the fleet outliers of the
+    type); a full recomputation of every type must find exactly the same open flags."""
+    from server.flags.service import recompute_all
+
+    def snapshot() -> list[tuple[Any, ...]]:
+        return sorted(
+            (f["unit"], f["kind"], f["severity"], f["message"], repr(f["evidence"]))
+            for f in flags(client, viewer, open=True)
+        )
+
+    incremental = snapshot()
+    assert {k for _, k, *_ in incremental} >= {"drift", "failed_acceptance", "overdue"}
+    with app.state.sessionmaker() as session:
+        recompute_all(session)
+        session.commit()
+    assert snapshot() == incremental
+
+
+def test_the_overdue_sweep_raises_what_time_alone_brought(client, app, technician, viewer, shop):
+    from datetime import date as Date
+
+    from server.flags.service import sweep_overdue
+
+    client.post("/api/v1/units", json={"serial": "T-1", "sensor_type": TYPE}, headers=technician)
+    calibrate(client, technician, "T-1", NOW - timedelta(days=300), points(seed=7))
+    assert of(flags(client, viewer, open=True), "T-1", "overdue") == []
+    due = Date.fromisoformat(client.get("/api/v1/units/T-1", headers=viewer).json()["due_on"])
+    assert due == (NOW - timedelta(days=300)).date() + timedelta(days=365)  # no drift history
+
+    def sweep(on: Date) -> int:
+        with app.state.sessionmaker() as session:
+            n = sweep_overdue(session, today=on)
+            session.commit()
+        return n
+
+    def overdue_of_t1() -> list[str]:
+        return [f["severity"] for f in of(flags(client, viewer, open=True), "T-1", "overdue")]
+
+    sweep(due)
+    assert overdue_of_t1() == []  # due today is not overdue
+    assert sweep(due) == 0  # nothing else left to do on that day
+    assert sweep(due + timedelta(days=10)) >= 1
+    assert overdue_of_t1() == ["warning"]
+    late = of(flags(client, viewer, open=True), "T-1", "overdue")
+    assert late[0]["evidence"]["days_overdue"] == 10
+    assert sweep(due + timedelta(days=12)) == 0  # flagged already: nothing to do
+    assert sweep(due + timedelta(days=31)) >= 1  # past 30 days: the warning becomes an action
+    assert overdue_of_t1() == ["action"]
