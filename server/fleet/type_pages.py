@@ -1,5 +1,6 @@
-"""Browser pages of sensor types: the list, one type's settings (editable by admins), and the
-progress of its refit jobs (polled by htmx while one runs)."""
+"""Browser pages of sensor types: the list, one type's fleet view (every unit's curve and the
+spread of its constants), its settings (editable by admins), and the progress of its refit jobs
+(polled by htmx while one runs)."""
 
 from __future__ import annotations
 
@@ -12,18 +13,23 @@ from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from pydantic import ValidationError
 from sqlalchemy import func, select
+from sqlalchemy.orm import selectinload
 
 import shared
 from server.accounts.deps import PageAdmin, PageViewer
 from server.accounts.models import ROLE_RANK, Role, User
 from server.calibrations import refits
+from server.calibrations.charts import Axes
+from server.calibrations.models import CalibrationSession, latest_session, stored_fit
 from server.db import SessionDep
 from server.errors import Invalid
+from server.flags.models import Flag, FlagKind
 from server.flags.service import recompute_flags
-from server.fleet import service
-from server.fleet.models import NoiseIn, SensorType, Unit
+from server.fleet import charts, service
+from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeUpdate
-from server.htmx import render
+from server.htmx import is_partial, render
+from shared.fleet import MIN_UNITS
 
 router = APIRouter(include_in_schema=False)
 
@@ -149,6 +155,82 @@ def _context(
     }
 
 
+def fleet_view(session: Any, st: SensorType) -> dict[str, Any]:
+    """The type's fleet card: every calibrated, unretired unit's current curve overlaid, the
+    spread of the most used family's constants, and the units with an open fleet_outlier flag.
+    From the stored fits only (nothing is refitted)."""
+    units = session.scalars(
+        select(Unit)
+        .where(Unit.sensor_type_id == st.id, Unit.status != UnitStatus.retired)
+        .options(selectinload(Unit.sessions).selectinload(CalibrationSession.fits))
+        .order_by(Unit.serial)
+    ).all()
+    flags = {
+        f.unit_id: f
+        for f in session.scalars(
+            select(Flag)
+            .join(Flag.unit)
+            .where(
+                Unit.sensor_type_id == st.id,
+                Flag.kind == FlagKind.fleet_outlier,
+                Flag.open.is_(True),
+            )
+            .order_by(Flag.id)
+        )
+    }
+    members = []
+    outliers = []
+    for unit in units:
+        last = latest_session(unit.sessions)
+        flag = flags.get(unit.id)
+        z = (flag.evidence or {}).get("z") if flag else None
+        if flag is not None:
+            evidence = flag.evidence or {}
+            outliers.append(
+                {
+                    "serial": unit.serial,
+                    "severity": flag.severity.value,
+                    "z": z,
+                    "at_reading": evidence.get("at_reading"),
+                    "value": evidence.get("value"),
+                    "center": evidence.get("center"),
+                }
+            )
+        if last is not None:
+            members.append(
+                charts.Member(
+                    serial=unit.serial,
+                    fit=stored_fit(last),
+                    severity=flag.severity.value if flag else None,
+                    z=float(z) if isinstance(z, int | float) else None,
+                )
+            )
+    outliers.sort(key=lambda o: -abs(o["z"]) if isinstance(o["z"], int | float) else 0.0)
+    view: dict[str, Any] = {
+        "calibrated": len(members),
+        "outliers": outliers,
+        "curves_json": None,
+        "families": None,
+        "parameters": [],
+        "more_parameters": 0,
+        "min_units": MIN_UNITS,
+    }
+    if len(members) < 2:
+        return view
+    axes = Axes(st.quantity, st.value_unit, st.reading_unit)
+    families = charts.families_of(members, st.families)
+    view.update(
+        curves_json=charts.curves_figure(members, axes).to_json(),
+        families=families,
+        parameters=[
+            {"name": spread.name, "json": fig.to_json(), "spread": spread}
+            for fig, spread in charts.parameter_figures(families)
+        ],
+        more_parameters=max(0, len(families.param_names) - charts.MAX_PARAMETER_PLOTS),
+    )
+    return view
+
+
 @router.get("/types")
 def types_page(request: Request, session: SessionDep, user: PageViewer) -> HTMLResponse:
     """Every sensor type with its tolerance, limits and interval, and how many units."""
@@ -168,12 +250,14 @@ def types_page(request: Request, session: SessionDep, user: PageViewer) -> HTMLR
 def type_page(
     request: Request, name: str, session: SessionDep, user: PageViewer, job: int | None = None
 ) -> HTMLResponse:
-    """One type: its settings (a form for admins) and its refit jobs."""
+    """One type: its fleet (curves, constants, outliers), refit jobs and settings (a form for
+    admins)."""
     st = service.get_sensor_type(session, name)
     return render(
         request,
         "fleet/type.html",
         block="main",
+        fleet=fleet_view(session, st),
         **_context(session, st, user, TypeForm.of(st), job),
     )
 
@@ -219,6 +303,7 @@ def edit_type(
             "fleet/type.html",
             block="main",
             status_code=422,
+            fleet=fleet_view(session, st),
             **_context(session, st, user, bad),
         )
     job = None
@@ -271,5 +356,6 @@ def job_status(
         "fleet/type.html",
         block="job",
         job=job,
+        fleet=None if is_partial(request) else fleet_view(session, st),
         **_context(session, st, user, TypeForm.of(st), job_id),
     )
