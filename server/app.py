@@ -14,8 +14,8 @@ from fastapi.staticfiles import StaticFiles
 from server import errors
 from server.accounts import pages as account_pages
 from server.audit import routes as audit_routes
+from server.calibrations import calibrate_pages, refits
 from server.calibrations import pages as calibration_pages
-from server.calibrations import refits
 from server.calibrations import routes as calibration_routes
 from server.config import Settings
 from server.db import make_engine, make_sessionmaker
@@ -23,18 +23,21 @@ from server.exports import pages as export_pages
 from server.exports import routes as export_routes
 from server.flags import pages as flag_pages
 from server.flags import routes as flag_routes
-from server.flags.service import bring_due_dates_up
+from server.flags.service import bring_due_dates_up, sweep_overdue
 from server.fleet import pages as fleet_pages
+from server.fleet import receive_pages, type_pages
 from server.fleet import routes as fleet_routes
-from server.fleet import type_pages
 from server.htmx import WEB
 from server.migrate import upgrade
 
+SWEEP_EVERY_S = 3600.0  # how often units that time alone made overdue get their flag
 PLOTLY_JS = Path(plotly.__file__).parent / "package_data" / "plotly.min.js"
 
 
 def create_app(settings: Settings | None = None, *, migrate: bool = True) -> FastAPI:
-    """The app for ``settings``; the database is upgraded to the newest schema on start."""
+    """The app for ``settings``. On start the database is upgraded to the newest schema, jobs a
+    stopped server left are marked failed, due dates never stored are stored and the overdue
+    flags time alone has brought are raised; while it serves, that overdue sweep runs hourly."""
     settings = settings or Settings()
     engine = make_engine(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms)
     if migrate:
@@ -45,12 +48,13 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         with factory() as session:
             if refits.fail_interrupted(session):
                 session.commit()
-            if bring_due_dates_up(session):
+            if bring_due_dates_up(session) + sweep_overdue(session):
                 session.commit()
     jobs = refits.JobRunner(factory)
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        jobs.every(SWEEP_EVERY_S, sweep_overdue, "overdue sweep")
         yield
         jobs.shutdown()  # a running refit finishes (or fails) before the database goes
         engine.dispose()
@@ -86,7 +90,9 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         account_pages,
         fleet_pages,
         type_pages,
+        receive_pages,
         calibration_pages,
+        calibrate_pages,
         export_pages,
         flag_pages,
     ):

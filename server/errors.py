@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import logging
+from urllib.parse import quote
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
-from fastapi.responses import JSONResponse, RedirectResponse, Response
+from fastapi.responses import JSONResponse, Response
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 log = logging.getLogger("sensorledger")
@@ -56,12 +57,12 @@ def _field(loc: tuple[object, ...]) -> str:
 
 def install(app: FastAPI) -> None:
     """Register the handlers: JSON under /api/, an HTML page elsewhere."""
-    from server.htmx import render  # local: htmx imports templates, which import config
+    from server.htmx import page_path, redirect, render  # local: htmx imports the templates
 
     @app.exception_handler(DomainError)
     async def on_domain_error(request: Request, exc: DomainError) -> Response:
         if isinstance(exc, NotSignedIn) and not _is_api(request):
-            return RedirectResponse(f"/signin?next={request.url.path}", status_code=303)
+            return redirect(request, f"/signin?next={quote(page_path(request), safe='/')}")
         if _is_api(request):
             headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else None
             return JSONResponse(

@@ -5,9 +5,10 @@ from __future__ import annotations
 import json
 from pathlib import Path
 from typing import Any
+from urllib.parse import urlsplit
 
 from fastapi import Request
-from fastapi.responses import HTMLResponse
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from jinja2 import Environment, FileSystemLoader, StrictUndefined, select_autoescape
 
 from server.formatting import FILTERS
@@ -28,6 +29,24 @@ env.filters.update(FILTERS)
 def is_partial(request: Request) -> bool:
     h = request.headers
     return h.get("HX-Request") == "true" and h.get("HX-History-Restore-Request") != "true"
+
+
+def redirect(request: Request, url: str) -> Response:
+    """Go to ``url``: a 303 for a plain request; for htmx an ``HX-Redirect``, so that the whole
+    page changes instead of the new page landing inside the element that asked."""
+    if is_partial(request):
+        return Response(status_code=200, headers={"HX-Redirect": url, "Vary": "HX-Request"})
+    return RedirectResponse(url, status_code=303)
+
+
+def page_path(request: Request) -> str:
+    """The path of the page the user is on: for htmx the page that sent the request (its
+    ``HX-Current-URL``), else the request's own path."""
+    current = request.headers.get("HX-Current-URL") if is_partial(request) else None
+    if current:
+        parsed = urlsplit(current)
+        return parsed.path + (f"?{parsed.query}" if parsed.query else "")
+    return request.url.path
 
 
 def render(

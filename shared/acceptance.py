@@ -38,9 +38,9 @@ class Decision:
     passed: bool
     rule: str
     reasons: tuple[str, ...]
-    worst_error: float  # largest |residual| among used points
-    worst_error_at: float  # reference value where it occurs
-    allowed_at_worst: float  # allowed error at that point
+    worst_error: float  # |residual| of the used point with the least margin (error - allowed)
+    worst_error_at: float  # its reference value
+    allowed_at_worst: float  # the error allowed there
     max_expanded_uncertainty: float  # largest U (k = 2) judged for the TUR among used points
     tur_required: float
     tur_achieved: float  # smallest allowed / U over used points

@@ -103,17 +103,25 @@ class Suspect:
     reason: str
 
 
+EXACT_REL = 1e-9  # residuals below this fraction of the values: an exact fit (rounding only)
+
+
 def suspect_points(result: Fit, alpha: float = SUSPECT_ALPHA) -> list[Suspect]:
     """Points whose studentised residual exceeds the Bonferroni-corrected Student-t limit.
 
     Limit t_{1 - alpha/(2n), dof - 1} over n used points: a family-wise false-alarm rate of about
     ``alpha`` per calibration (the usual outlier test for regression; common practice). Suspect
-    points are flagged, never dropped.
+    points are flagged, never dropped. Points that an exact formula generated (residuals within
+    ``EXACT_REL`` of the values: rounding) have no scatter, so none is suspect.
     """
-    t = studentized_residuals(result)
     n = result.n_used
     if result.dof < 2 or n == 0:
         return []
+    used = np.asarray(result.used, dtype=bool)
+    scale = float(np.max(np.abs(result.value[used]))) or 1.0
+    if float(np.max(np.abs(result.residuals[used]))) <= EXACT_REL * scale:
+        return []  # the points lie on the curve to rounding: no scatter to judge a point by
+    t = studentized_residuals(result)
     limit = float(stats.t.ppf(1.0 - alpha / (2.0 * n), result.dof - 1))
     found = []
     for i in np.flatnonzero(np.abs(np.nan_to_num(t)) > limit):

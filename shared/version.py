@@ -1,3 +1,6 @@
-"""The engine's version, recorded with every stored fit."""
+"""The engine's version, recorded with every stored fit.
 
-ENGINE_VERSION = "0.1.0"
+0.1.1: points that lie on the fitted curve to rounding have no suspect point.
+"""
+
+ENGINE_VERSION = "0.1.1"

@@ -77,3 +77,15 @@ def test_lack_of_fit_f_equals_statsmodels_anova() -> None:
 def test_no_repeats_no_lack_of_fit_test() -> None:
     r, v = _line_data()
     assert lack_of_fit(fit("line", r, v)) is None
+
+
+def test_points_on_an_exact_line_have_no_suspect() -> None:
+    # common practice, no source: rounding-level residuals (~1e-14) are no scatter; studentised
+    # they are arbitrary numbers that the Bonferroni limit would wrongly flag
+    r = np.linspace(0.0, 1000.0, 12)
+    exact = fit("line", r, 0.27 * r - 3.0)
+    assert float(np.max(np.abs(exact.residuals))) < 1e-9
+    assert suspect_points(exact) == []
+    bumped_values = 0.27 * r - 3.0 + np.random.default_rng(3).normal(0.0, 0.01, r.size)
+    bumped_values[5] += 0.5
+    assert [s.index for s in suspect_points(fit("line", r, bumped_values))] == [5]

@@ -93,3 +93,26 @@ def test_viewers_see_no_actions_and_cannot_post(viewer) -> None:
     assert r.status_code == 403
     r = viewer.post(f"{url}/status", data={"status": "retired"}, follow_redirects=False)
     assert r.status_code == 403
+
+
+def test_an_expired_sign_in_sends_the_whole_page_to_sign_in(app) -> None:
+    """An htmx request without a sign-in must not swap the sign-in page into a fragment: it gets
+    HX-Redirect to the sign-in, coming back to the page the user was on."""
+    from fastapi.testclient import TestClient
+
+    with TestClient(app) as anonymous:
+        plain = anonymous.get("/units/IR-0001", follow_redirects=False)
+        assert plain.status_code == 303
+        assert plain.headers["location"] == "/signin?next=/units/IR-0001"
+        partial = anonymous.get(
+            "/?q=IR",
+            headers={
+                "HX-Request": "true",
+                "HX-Current-URL": "http://testserver/units/IR-0001?reading=500",
+            },
+            follow_redirects=False,
+        )
+        assert partial.status_code == 200 and partial.text == ""
+        assert partial.headers["HX-Redirect"] == "/signin?next=/units/IR-0001%3Freading%3D500"
+        back = anonymous.get(partial.headers["HX-Redirect"])
+        assert 'name="next" value="/units/IR-0001?reading=500"' in back.text
