@@ -8,7 +8,7 @@ from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Form, Request
+from fastapi import APIRouter, Depends, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from pydantic import ValidationError
 from sqlalchemy.orm import object_session
@@ -482,12 +482,7 @@ def change_status(
     return RedirectResponse(unit_url(unit.serial), status_code=303)
 
 
-@router.post("/units/{serial}/calibrations")
-def add_calibration(
-    request: Request,
-    serial: str,
-    session: SessionDep,
-    user: PageTechnician,
+def form_fields(
     performed_at: Annotated[str, Form()] = "",
     operator: Annotated[str, Form()] = "",
     reference: Annotated[str, Form()] = "",
@@ -500,10 +495,9 @@ def add_calibration(
     reference_k: Annotated[str, Form()] = "",
     extra_u: Annotated[str, Form()] = "",
     extra_label: Annotated[str, Form()] = "",
-) -> Response:
-    """Store a calibration typed into the unit page; a form to fix (422) when it cannot be."""
-    unit = get_unit(session, serial)
-    form = CalibrationForm(
+) -> CalibrationForm:
+    """The calibration form's fields as typed (the unit page's form and /calibrate's)."""
+    return CalibrationForm(
         performed_at=performed_at,
         operator=operator,
         reference=reference,
@@ -517,6 +511,21 @@ def add_calibration(
         extra_u=extra_u,
         extra_label=extra_label,
     )
+
+
+FormFields = Annotated[CalibrationForm, Depends(form_fields)]
+
+
+@router.post("/units/{serial}/calibrations")
+def add_calibration(
+    request: Request,
+    serial: str,
+    session: SessionDep,
+    user: PageTechnician,
+    form: FormFields,
+) -> Response:
+    """Store a calibration typed into the unit page; a form to fix (422) when it cannot be."""
+    unit = get_unit(session, serial)
     try:
         record = service.run_calibration(
             session, unit, calibration_from_form(form), recorded_by=user.name

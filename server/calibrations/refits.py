@@ -46,6 +46,7 @@ from server.calibrations.service import Outcome, fit_points, type_b_of
 from server.db import utcnow
 from server.errors import DomainError, NotFound
 from server.fleet.models import SensorType, Unit
+from server.fleet.service import TypeChange
 
 log = logging.getLogger("sensorledger.jobs")
 
@@ -78,6 +79,21 @@ def start_refit(
         sessions=job.total,
     )
     return job
+
+
+def follow_type_change(
+    session: Session, sensor_type: SensorType, change: TypeChange, actor: str | None
+) -> RefitJob | None:
+    """What an edit of a type sets off: a refit job when it changed fitting or acceptance (the
+    caller commits, then submits it), else the type's flags recomputed when it changed the drift
+    limit or interval; None when no job was started."""
+    if change.needs_refit:
+        return start_refit(session, sensor_type, change.describe(), actor)
+    if change.needs_recompute:
+        from server.flags.service import recompute_flags  # flags build on calibrations
+
+        recompute_flags(session, sensor_type)
+    return None
 
 
 def get_job(session: Session, job_id: int) -> RefitJob:

@@ -77,11 +77,7 @@ def update_sensor_type(
     acceptance refits every calibration of the type as a background job."""
     sensor_type = service.get_sensor_type(session, name)
     change = service.update_sensor_type(session, sensor_type, data, actor=user.name)
-    job = None
-    if change.needs_refit:
-        job = refits.start_refit(session, sensor_type, change.describe(), user.name)
-    elif change.needs_recompute:
-        recompute_flags(session, sensor_type)
+    job = refits.follow_type_change(session, sensor_type, change, user.name)
     session.commit()
     if job is not None:
         request.app.state.jobs.submit(job.id)

@@ -24,7 +24,6 @@ from server.calibrations.models import CalibrationSession, latest_session, store
 from server.db import SessionDep
 from server.errors import Invalid
 from server.flags.models import Flag, FlagKind
-from server.flags.service import recompute_flags
 from server.fleet import charts, service
 from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeUpdate
@@ -306,11 +305,7 @@ def edit_type(
             fleet=fleet_view(session, st),
             **_context(session, st, user, bad),
         )
-    job = None
-    if change.needs_refit:
-        job = refits.start_refit(session, st, change.describe(), user.name)
-    elif change.needs_recompute:
-        recompute_flags(session, st)
+    job = refits.follow_type_change(session, st, change, user.name)
     session.commit()
     if job is not None:
         request.app.state.jobs.submit(job.id)

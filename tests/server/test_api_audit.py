@@ -9,20 +9,10 @@ from __future__ import annotations
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-import numpy as np
+from tests.server.lines import READINGS, line_points, pot_type
 
 TYPE = "Pot audit"
-READINGS = np.arange(0.0, 1001.0, 100.0)
 NOW = datetime.now(UTC).replace(microsecond=0)
-
-
-def points(seed: int, shift: float = 0.0) -> list[dict[str, float]]:
-    rng = np.random.default_rng(seed)
-    values = 0.1 * READINGS + shift + rng.normal(0.0, 0.02, READINGS.size)
-    return [
-        {"reference_value": round(float(v), 4), "reading": float(r)}
-        for v, r in zip(values, READINGS, strict=True)
-    ]
 
 
 def entries(client: Any, headers: dict[str, str], **query: Any) -> list[dict[str, Any]]:
@@ -42,17 +32,7 @@ def test_each_change_leaves_one_entry(client, app, admin, technician, viewer):
     ok(
         client.post(
             "/api/v1/sensor-types",
-            json={
-                "name": TYPE,
-                "quantity": "angle",
-                "value_unit": "deg",
-                "reading_unit": "counts",
-                "reading_min": 0,
-                "reading_max": 1023,
-                "families": ["line"],
-                "tolerance_abs": 1.0,
-                "drift_limit_abs": 0.5,
-            },
+            json=pot_type(TYPE, drift_limit_abs=0.5),
             headers=admin,
         ),
         201,
@@ -74,7 +54,7 @@ def test_each_change_leaves_one_entry(client, app, admin, technician, viewer):
                     "performed_at": when.isoformat(),
                     "operator": "tom",
                     "reference": "angle jig",
-                    "points": points(seed, shift),
+                    "points": line_points(seed, shift=shift),
                 },
                 headers=technician,
             ),
@@ -167,17 +147,7 @@ def test_voiding_a_calibration_keeps_it_and_moves_everything_back(
     ok(
         client.post(
             "/api/v1/sensor-types",
-            json={
-                "name": TYPE,
-                "quantity": "angle",
-                "value_unit": "deg",
-                "reading_unit": "counts",
-                "reading_min": 0,
-                "reading_max": 1023,
-                "families": ["line"],
-                "tolerance_abs": 1.0,
-                "drift_limit_abs": 0.5,
-            },
+            json=pot_type(TYPE, drift_limit_abs=0.5),
             headers=admin,
         ),
         201,
@@ -200,7 +170,7 @@ def test_voiding_a_calibration_keeps_it_and_moves_everything_back(
                     "performed_at": when.isoformat(),
                     "operator": "tom",
                     "reference": "angle jig",
-                    "points": points(seed, shift),
+                    "points": line_points(seed, shift=shift),
                 },
                 headers=technician,
             ),

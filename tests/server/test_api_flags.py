@@ -11,39 +11,22 @@ from __future__ import annotations
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-import numpy as np
 import pytest
 
+from tests.server.lines import READINGS, line_points
+from tests.server.lines import calibrate as save
+
 TYPE = "Pot 1000"
-READINGS = np.arange(0.0, 1001.0, 100.0)
 NOW = datetime.now(UTC).replace(microsecond=0)
 SHIFT = 3.0
 
 
 def points(shift: float = 0.0, *, seed: int, bump: float = 0.0) -> list[dict[str, float]]:
-    rng = np.random.default_rng(seed)
-    values = 0.1 * READINGS + shift + rng.normal(0.0, 0.02, READINGS.size)
-    values[5] += bump
-    return [
-        {"reference_value": round(float(v), 4), "reading": float(r)}
-        for v, r in zip(values, READINGS, strict=True)
-    ]
+    return line_points(seed, shift=shift, bump=bump)
 
 
 def calibrate(client: Any, headers: dict[str, str], serial: str, when: datetime, pts: list) -> int:
-    r = client.post(
-        f"/api/v1/units/{serial}/calibrations",
-        json={
-            "performed_at": when.isoformat(),
-            "operator": "tom",
-            "reference": "indexing head",
-            "kind": "periodic",
-            "points": pts,
-        },
-        headers=headers,
-    )
-    assert r.status_code == 201, r.text
-    return int(r.json()["id"])
+    return int(save(client, headers, serial, when, pts, reference="indexing head")["id"])
 
 
 def flags(client: Any, headers: dict[str, str], **query: Any) -> list[dict[str, Any]]:

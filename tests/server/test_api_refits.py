@@ -20,22 +20,16 @@ from server.app import create_app
 from server.calibrations.models import FitRecord, JobState, RefitJob
 from server.config import Settings
 from server.fleet.models import SensorType, Unit
+from tests.server.lines import calibrate, line_points, pot_type
 
 TYPE = "Pot 270"
-READINGS = np.arange(0.0, 1001.0, 100.0)
 NOW = datetime.now(UTC).replace(microsecond=0)
 BUMP = 0.6
 TIMEOUT_S = 120  # a refit of a handful of sessions takes well under a second; this is a hang
 
 
 def points(seed: int, *, shift: float = 0.0, bump: float = 0.0) -> list[dict[str, float]]:
-    rng = np.random.default_rng(seed)
-    values = 0.1 * READINGS + shift + rng.normal(0.0, 0.02, READINGS.size)
-    values[4] += bump
-    return [
-        {"reference_value": round(float(v), 4), "reading": float(r)}
-        for v, r in zip(values, READINGS, strict=True)
-    ]
+    return line_points(seed, shift=shift, bump=bump, bump_at=4)
 
 
 def worst_line_residual(pts: list[dict[str, float]]) -> float:
@@ -46,37 +40,11 @@ def worst_line_residual(pts: list[dict[str, float]]) -> float:
     return float(np.max(np.abs(v - np.polyval(coef, r))))
 
 
-def calibrate(client: Any, headers: dict[str, str], serial: str, when: datetime, pts: list) -> Any:
-    r = client.post(
-        f"/api/v1/units/{serial}/calibrations",
-        json={
-            "performed_at": when.isoformat(),
-            "operator": "tom",
-            "reference": "angle jig",
-            "points": pts,
-        },
-        headers=headers,
-    )
-    assert r.status_code == 201, r.text
-    return r.json()
-
-
 @pytest.fixture
 def shop(client, admin, technician) -> dict[str, Any]:
     r = client.post(
         "/api/v1/sensor-types",
-        json={
-            "name": TYPE,
-            "quantity": "angle",
-            "value_unit": "deg",
-            "reading_unit": "counts",
-            "reading_min": 0,
-            "reading_max": 1023,
-            "families": ["line"],
-            "tolerance_abs": 1.0,
-            "drift_limit_abs": 5.0,
-            "interval_days": 365,
-        },
+        json=pot_type(TYPE, drift_limit_abs=5.0, interval_days=365),
         headers=admin,
     )
     assert r.status_code == 201, r.text
