@@ -5,11 +5,11 @@ spread of its constants), its settings (editable by admins), and the progress of
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Annotated, Any
 from urllib.parse import quote
 
-from fastapi import APIRouter, Form, Request
+from fastapi import APIRouter, Depends, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from pydantic import ValidationError
 from sqlalchemy import func, select
@@ -22,11 +22,11 @@ from server.calibrations import refits
 from server.calibrations.charts import Axes
 from server.calibrations.models import CalibrationSession, latest_session, stored_fit
 from server.db import SessionDep
-from server.errors import Invalid
+from server.errors import Conflict, Invalid
 from server.flags.models import Flag, FlagKind
 from server.fleet import charts, service
 from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
-from server.fleet.schemas import SensorTypeUpdate
+from server.fleet.schemas import SensorTypeCreate, SensorTypeUpdate
 from server.htmx import is_partial, render
 from shared.fleet import MIN_UNITS
 
@@ -132,8 +132,10 @@ def update_from_form(form: TypeForm) -> SensorTypeUpdate:
 
 
 def _catalog_order(chosen: list[str]) -> list[str]:
-    """The type's families in its order, then the rest of the catalog by name."""
-    return list(chosen) + sorted(set(shared.FAMILIES) - set(chosen))
+    """The type's families in its order, then the rest of the catalog by name (a name not in
+    the catalog, from a crafted form, is left out: the error names it)."""
+    known = [name for name in chosen if name in shared.FAMILIES]
+    return known + sorted(set(shared.FAMILIES) - set(known))
 
 
 def _context(
@@ -245,6 +247,108 @@ def types_page(request: Request, session: SessionDep, user: PageViewer) -> HTMLR
     return render(request, "fleet/types.html", block="main", rows=rows)
 
 
+@dataclass(frozen=True, slots=True)
+class NewType:
+    """The new-type form as typed: what the type is, and its settings."""
+
+    name: str = ""
+    quantity: str = ""
+    value_unit: str = ""
+    reading_unit: str = ""
+    reading_min: str = ""
+    reading_max: str = ""
+
+
+NEW_SETTINGS = TypeForm(
+    families=[],
+    family_options="",
+    tolerance_abs="",
+    tolerance_rel="",
+    drift_limit_abs="",
+    interval_days="365",
+    tur="4",
+    noise_in=NoiseIn.value.value,
+    reading_resolution="",
+)
+
+
+def _new_context(new: NewType, form: TypeForm) -> dict[str, Any]:
+    return {
+        "new": new,
+        "form": form,
+        "families": _catalog_order(form.families),
+        "formulas": {name: shared.get_family(name).formula for name in shared.FAMILIES},
+        "noise_choices": list(NoiseIn),
+        "value_unit": new.value_unit or "value units",
+        "reading_unit": new.reading_unit or "reading units",
+    }
+
+
+@router.get("/types/new")
+def new_type_page(request: Request, user: PageAdmin) -> HTMLResponse:
+    """A form for a new sensor type (admin)."""
+    return render(
+        request, "fleet/type_new.html", block="main", **_new_context(NewType(), NEW_SETTINGS)
+    )
+
+
+@router.post("/types")
+def create_type(
+    request: Request,
+    session: SessionDep,
+    user: PageAdmin,
+    form: SettingsForm,
+    name: Annotated[str, Form()] = "",
+    quantity: Annotated[str, Form()] = "",
+    value_unit: Annotated[str, Form()] = "",
+    reading_unit: Annotated[str, Form()] = "",
+    reading_min: Annotated[str, Form()] = "",
+    reading_max: Annotated[str, Form()] = "",
+) -> Response:
+    """Create the type and open its page; the form to fix (422) when it cannot be."""
+    new = NewType(name, quantity, value_unit, reading_unit, reading_min, reading_max)
+    try:
+        settings = update_from_form(form)
+        try:
+            data = SensorTypeCreate(
+                name=name,
+                quantity=quantity,
+                value_unit=value_unit,
+                reading_unit=reading_unit,
+                reading_min=_required_number(reading_min, "reading_min", "lowest reading"),
+                reading_max=_required_number(reading_max, "reading_max", "highest reading"),
+                **settings.model_dump(exclude_none=True),
+            )
+        except ValidationError as exc:
+            first = exc.errors()[0]
+            field_name = ".".join(str(p) for p in first["loc"])
+            message = str(first["msg"]).removeprefix("Value error, ")
+            if not field_name:  # a rule across fields
+                field_name = "reading_max" if "reading_max" in message else "tolerance_abs"
+                raise Invalid(message, field=field_name) from exc
+            raise Invalid(f"{field_name.replace('_', ' ')}: {message}", field=field_name) from exc
+        created = service.create_sensor_type(session, data, actor=user.name)
+    except (Invalid, Conflict) as exc:
+        session.rollback()
+        bad = replace(form, error=exc.message, error_field=exc.field)
+        return render(
+            request,
+            "fleet/type_new.html",
+            block="main",
+            status_code=422,
+            **_new_context(new, bad),
+        )
+    session.commit()
+    return RedirectResponse(type_url(created.name), status_code=303)
+
+
+def _required_number(text: str, name: str, words: str) -> float:
+    value = _number(text, name)
+    if value is None:
+        raise Invalid(f"{words}: give a number", field=name)
+    return value
+
+
 @router.get("/types/{name}")
 def type_page(
     request: Request, name: str, session: SessionDep, user: PageViewer, job: int | None = None
@@ -261,12 +365,7 @@ def type_page(
     )
 
 
-@router.post("/types/{name}")
-def edit_type(
-    request: Request,
-    name: str,
-    session: SessionDep,
-    user: PageAdmin,
+def settings_form(
     families: Annotated[list[str] | None, Form()] = None,
     family_options: Annotated[str, Form()] = "",
     tolerance_abs: Annotated[str, Form()] = "",
@@ -276,11 +375,9 @@ def edit_type(
     tur: Annotated[str, Form()] = "",
     noise_in: Annotated[str, Form()] = "",
     reading_resolution: Annotated[str, Form()] = "",
-) -> Response:
-    """Save the settings; a change to fitting or acceptance starts a refit job, which the page
-    then shows; a form to fix (422) when the settings cannot be used."""
-    st = service.get_sensor_type(session, name)
-    form = TypeForm(
+) -> TypeForm:
+    """The settings fields as typed (a type's settings form and the new-type form)."""
+    return TypeForm(
         families=list(families or []),
         family_options=family_options,
         tolerance_abs=tolerance_abs,
@@ -291,12 +388,24 @@ def edit_type(
         noise_in=noise_in,
         reading_resolution=reading_resolution,
     )
+
+
+SettingsForm = Annotated[TypeForm, Depends(settings_form)]
+
+
+@router.post("/types/{name}")
+def edit_type(
+    request: Request, name: str, session: SessionDep, user: PageAdmin, form: SettingsForm
+) -> Response:
+    """Save the settings; a change to fitting or acceptance starts a refit job, which the page
+    then shows; a form to fix (422) when the settings cannot be used."""
+    st = service.get_sensor_type(session, name)
     try:
         change = service.update_sensor_type(session, st, update_from_form(form), actor=user.name)
     except Invalid as exc:
         session.rollback()
         st = service.get_sensor_type(session, name)
-        bad = TypeForm(**{**_fields(form), "error": exc.message, "error_field": exc.field})
+        bad = replace(form, error=exc.message, error_field=exc.field)
         return render(
             request,
             "fleet/type.html",
@@ -311,20 +420,6 @@ def edit_type(
         request.app.state.jobs.submit(job.id)
     where = type_url(st.name) + (f"?job={job.id}" if job else "?saved=1")
     return RedirectResponse(where, status_code=303)
-
-
-def _fields(form: TypeForm) -> dict[str, Any]:
-    return {
-        "families": form.families,
-        "family_options": form.family_options,
-        "tolerance_abs": form.tolerance_abs,
-        "tolerance_rel": form.tolerance_rel,
-        "drift_limit_abs": form.drift_limit_abs,
-        "interval_days": form.interval_days,
-        "tur": form.tur,
-        "noise_in": form.noise_in,
-        "reading_resolution": form.reading_resolution,
-    }
 
 
 @router.post("/types/{name}/refit")

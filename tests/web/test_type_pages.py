@@ -186,3 +186,64 @@ def test_refit_progress_is_polled_to_the_end(browser, server, live_db, artifacts
         guard.check()
     finally:
         context.close()
+
+
+NEW_TYPE = {
+    "name": "Thermistor 10k",
+    "quantity": "temperature",
+    "value_unit": "degC",
+    "reading_unit": "ohm",
+    "reading_min": "100",
+    "reading_max": "400000",
+    "families": ["steinhart_hart", "beta"],
+    "family_options": "",
+    "tolerance_abs": "0.2",
+    "tolerance_rel": "",
+    "drift_limit_abs": "0.1",
+    "interval_days": "365",
+    "tur": "4",
+    "noise_in": "value",
+    "reading_resolution": "",
+}
+
+
+def test_an_admin_creates_a_type(admin, app) -> None:
+    assert admin.get("/types/new").status_code == 200
+    r = admin.post("/types", data=NEW_TYPE, follow_redirects=False)
+    assert r.status_code == 303, r.text
+    assert r.headers["location"] == url("Thermistor 10k")
+    made = the_type(app, "Thermistor 10k")
+    assert (made.quantity, made.value_unit, made.reading_unit) == ("temperature", "degC", "ohm")
+    assert (made.reading_min, made.reading_max) == (100.0, 400000.0)
+    assert made.families == ["steinhart_hart", "beta"] and made.tolerance_abs == 0.2
+    assert made.tolerance_rel is None and made.drift_limit_abs == 0.1
+    assert "Thermistor 10k" in admin.get("/types").text
+
+
+@pytest.mark.parametrize(
+    ("changes", "field", "words"),
+    [
+        ({"name": IR_TYPE}, "name", "exists already"),
+        ({"reading_max": "50"}, "reading_max", "greater than reading_min"),
+        ({"reading_min": "low"}, "reading_min", "not a number"),
+        ({"tolerance_abs": ""}, "tolerance_abs", "tolerance"),
+        ({"name": ""}, "name", "name"),
+        ({"families": ["steinhart_hart", "nope"]}, "families.1", "unknown family"),
+    ],
+)
+def test_a_new_type_that_cannot_be_made_comes_back(admin, app, changes, field, words) -> None:
+    r = admin.post("/types", data={**NEW_TYPE, **changes}, follow_redirects=False)
+    assert r.status_code == 422
+    assert "Not saved." in r.text and words in r.text
+    if not field.startswith("famil"):
+        assert re.search(rf'id="{field}"[^>]*aria-invalid="true"', r.text)
+    assert 'value="temperature"' in r.text  # what was typed is kept
+    with app.state.sessionmaker() as s:
+        names = set(s.scalars(sa.select(SensorType.name)))
+    assert "Thermistor 10k" not in names
+
+
+def test_only_admins_create_types(client, viewer) -> None:
+    assert viewer.get("/types/new").status_code == 403
+    assert client.post("/types", data=NEW_TYPE, follow_redirects=False).status_code == 403
+    assert 'href="/types/new"' not in viewer.get("/types").text
