@@ -261,3 +261,64 @@ def outlier_figure(evidence: dict[str, Any]) -> go.Figure | None:
     _level(fig, span, Z_ACTION, color=TOLERANCE, dash="dash", name=f"action ±{Z_ACTION:g}")
     _level(fig, span, Z_WARNING, color=SUSPECT, dash="dot", name=f"warning ±{Z_WARNING:g}")
     return _small_layout(fig, x_title=f"reading ({ru})", y_title="robust z", height=220)
+
+
+def errors_figure(evidence: dict[str, Any]) -> go.Figure | None:
+    """The errors a flag judged against the tolerance, at each reference value: for an
+    out-of-tolerance-in-service flag the as-found errors (the previous calibration applied to the
+    new points, minus the reference), for a failed acceptance the residuals of the fit. The
+    allowed error ±(tolerance_abs + tolerance_rel % of value) is the envelope; points outside it
+    are drawn in the warning colour. None when the evidence has no per-point arrays (flags
+    stored before they were kept)."""
+    pts = evidence.get("points") or {}
+    value, error, allowed = pts.get("value") or [], pts.get("error") or [], pts.get("allowed")
+    if not value or len(error) != len(value) or not allowed or len(allowed) != len(value):
+        return None
+    vu = evidence.get("value_unit", "")
+    order = sorted(range(len(value)), key=lambda i: value[i])
+    xs = [value[i] for i in order]
+    lim = [allowed[i] for i in order]
+    out = [i for i in order if abs(error[i]) > allowed[i]]
+    inside = [i for i in order if abs(error[i]) <= allowed[i]]
+    fig = go.Figure()
+    fig.add_trace(
+        go.Scatter(
+            x=xs + xs[::-1],
+            y=lim + [-a for a in lim[::-1]],
+            fill="toself",
+            fillcolor=BAND,
+            line={"width": 0},
+            hoverinfo="skip",
+            showlegend=False,
+            legendgroup="allowed",
+        )
+    )
+    for sign in (1, -1):
+        fig.add_trace(
+            go.Scatter(
+                x=xs,
+                y=[sign * a for a in lim],
+                mode="lines",
+                line={"color": TOLERANCE, "width": 1.5, "dash": "dash"},
+                hoverinfo="skip",
+                name="allowed error",
+                legendgroup="allowed",
+                showlegend=sign == 1,
+            )
+        )
+    for chosen, color, name in ((inside, CURVE, "within"), (out, TOLERANCE, "outside")):
+        if chosen:
+            fig.add_trace(
+                go.Scatter(
+                    x=[value[i] for i in chosen],
+                    y=[error[i] for i in chosen],
+                    mode="markers",
+                    marker={"color": color, "size": 8 if name == "outside" else 6},
+                    name=name,
+                    hovertemplate=f"%{{x:.4g}} {vu}: error %{{y:+.3g}} {vu}<extra></extra>",
+                )
+            )
+    label = "as-found error" if evidence.get("n_judged") is not None else "residual"
+    return _small_layout(
+        fig, x_title=f"reference value ({vu})", y_title=f"{label} ({vu})", height=220
+    )

@@ -17,7 +17,7 @@ from server.calibrations.pages import blank_form, unit_context
 from server.db import SessionDep
 from server.errors import Invalid
 from server.flags import service
-from server.flags.charts import drift_figure, outlier_figure
+from server.flags.charts import drift_figure, errors_figure, outlier_figure
 from server.flags.models import EventKind, Flag, FlagKind
 from server.flags.panels import EventForm, unit_panels
 from server.flags.schemas import EventCreate
@@ -32,13 +32,15 @@ ATTENTION_LIMIT = 500  # flags shown on the page at most
 
 
 def _card(flag: Flag, user: User, error: str | None = None, note: str = "") -> dict[str, Any]:
-    """One flag as the page shows it: the flag, its plot (drift, fleet outlier), the form's
-    state."""
+    """One flag as the page shows it: the flag, its plot (every kind but overdue, whose
+    evidence is a date), the form's state."""
     figure = None
     if flag.kind is FlagKind.drift:
         figure = drift_figure(flag.evidence)
     elif flag.kind is FlagKind.fleet_outlier:
         figure = outlier_figure(flag.evidence)
+    elif flag.kind in (FlagKind.out_of_tolerance_in_service, FlagKind.failed_acceptance):
+        figure = errors_figure(flag.evidence)
     return {
         "flag": flag,
         "figure_json": figure.to_json() if figure is not None else None,

@@ -247,10 +247,15 @@ def installations_between(
 # -- the conditions --------------------------------------------------------------------------------
 
 
-def _failed(unit: Unit, last: CalibrationSession, vu: str) -> Found | None:
+def _failed(unit: Unit, last: CalibrationSession, st: SensorType) -> Found | None:
     stored = last.current_fit
     if stored is None or stored.passed:
         return None
+    vu = st.value_unit
+    fit = stored_fit(last)
+    used = np.asarray(fit.used, dtype=bool)
+    value = np.asarray(fit.value)[used]
+    allowed_each = (st.tolerance_abs or 0.0) + (st.tolerance_rel or 0.0) / 100.0 * np.abs(value)
     d = stored.decision
     worst, allowed = d.get("worst_error"), d.get("allowed_at_worst")
     reasons = [str(r) for r in d.get("reasons") or []]
@@ -275,6 +280,11 @@ def _failed(unit: Unit, last: CalibrationSession, vu: str) -> Found | None:
                 "reasons": d.get("reasons", []),
                 "rule": d.get("rule"),
                 "value_unit": vu,
+                "points": {
+                    "value": value,
+                    "error": np.asarray(fit.residuals)[used],
+                    "allowed": allowed_each,
+                },
             }
         ),
     )
@@ -391,6 +401,11 @@ def _out_in_service(
                 "worst_at_value": found.worst_at_value,
                 "allowed_at_worst": found.allowed_at_worst,
                 "installations": places,
+                "points": {
+                    "value": found.value,
+                    "error": found.error,
+                    "allowed": found.allowed,
+                },
                 "rule": found.rule,
                 "value_unit": vu,
                 "reading_unit": st.reading_unit,
@@ -531,7 +546,7 @@ def find_conditions(
         if only is not None and unit.id not in only:
             continue
         for item in (
-            _failed(unit, last, sensor_type.value_unit),
+            _failed(unit, last, sensor_type),
             _overdue(unit, last, sensor_type, today),
         ):
             if item is not None:

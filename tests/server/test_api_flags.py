@@ -354,3 +354,37 @@ def test_the_overdue_sweep_raises_what_time_alone_brought(client, app, technicia
     assert sweep(due + timedelta(days=12)) == 0  # flagged already: nothing to do
     assert sweep(due + timedelta(days=31)) >= 1  # past 30 days: the warning becomes an action
     assert overdue_of_t1() == ["action"]
+
+
+def test_error_evidence_of_as_found_and_failed_flags(client, viewer, shop):
+    """The per-point errors behind the small plots, against numpy's own least-squares lines: as
+    found = the first calibration's line at the second session's readings minus its references;
+    failed = the residuals of the failing session's own line; allowed = the tolerance, 1.0."""
+    import numpy as np
+
+    from server.flags.charts import errors_figure
+
+    def line_of(pts: list[dict[str, float]]) -> np.ndarray:
+        return np.polyfit([p["reading"] for p in pts], [p["reference_value"] for p in pts], 1)
+
+    items = flags(client, viewer, open=True)
+    first, second = points(seed=1), points(SHIFT, seed=2)
+    (oot,) = of(items, "D-1", "out_of_tolerance_in_service")
+    got = oot["evidence"]["points"]
+    r = np.array([p["reading"] for p in second])
+    expected = np.polyval(line_of(first), r) - np.array([p["reference_value"] for p in second])
+    assert np.array(got["error"]) == pytest.approx(expected, abs=1e-9)
+    assert got["allowed"] == pytest.approx([1.0] * len(second))
+
+    failing = points(seed=3, bump=4.0)
+    (failed,) = of(items, "F-1", "failed_acceptance")
+    got = failed["evidence"]["points"]
+    refs = np.array([p["reference_value"] for p in failing])
+    residuals = refs - np.polyval(line_of(failing), [p["reading"] for p in failing])
+    assert np.array(got["error"]) == pytest.approx(residuals, abs=1e-9)
+
+    fig = errors_figure(failed["evidence"])
+    assert fig is not None
+    outside = next(t for t in fig.data if t.name == "outside")
+    assert list(outside.y) == pytest.approx([float(residuals[5])])  # the bumped point alone
+    assert errors_figure({"value_unit": "deg"}) is None  # older evidence: no plot
