@@ -5,16 +5,17 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Annotated
 
-from fastapi import APIRouter, File, Form, Query, UploadFile
+from fastapi import APIRouter, Depends, File, Form, Query, UploadFile
 from pydantic import ValidationError
 
 from server.accounts.deps import ApiTechnician, ApiViewer
 from server.calibrations import service
 from server.calibrations.csvfile import MAX_BYTES, parse_points_csv
-from server.calibrations.models import SessionKind
+from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import (
     CalibrationCreate,
     CalibrationRead,
+    CalibrationSummaryRead,
     CurrentCalibrationRead,
     VoidCreate,
 )
@@ -24,8 +25,18 @@ from server.flags.schemas import FlagRead
 from server.flags.service import flag_read, flags_of, recompute_flags
 from server.fleet.models import Unit
 from server.fleet.service import get_unit
+from server.pagination import Page, PageParams, page_params
 
 router = APIRouter(prefix="/api/v1", tags=["calibrations"])
+
+BudgetReading = Annotated[
+    float | None,
+    Query(
+        allow_inf_nan=False,
+        description="reading (reading units, inside the valid range) at which to state the "
+        "uncertainty budget; default: the middle of the valid range",
+    ),
+]
 
 
 @router.post("/units/{serial}/calibrations", status_code=201)
@@ -91,6 +102,42 @@ def create_calibration_from_csv(
     return create_calibration(serial, data, session, user)
 
 
+@router.get("/units/{serial}/calibrations")
+def list_calibrations(
+    serial: str,
+    session: SessionDep,
+    user: ApiViewer,
+    page: Annotated[PageParams, Depends(page_params)],
+) -> Page[CalibrationSummaryRead]:
+    """The unit's calibration sessions, newest first, voided ones included."""
+    unit = get_unit(session, serial)
+    records = sorted(unit.sessions, key=lambda s: (s.performed_at, s.id), reverse=True)
+    current = latest_session(unit.sessions)
+    return Page(
+        items=[
+            service.summary_read(r, current)
+            for r in records[page.offset : page.offset + page.per_page]
+        ],
+        total=len(records),
+        page=page.page,
+        per_page=page.per_page,
+    )
+
+
+@router.get("/units/{serial}/calibrations/{session_id}")
+def get_calibration(
+    serial: str,
+    session_id: int,
+    session: SessionDep,
+    user: ApiViewer,
+    reading: BudgetReading = None,
+) -> CalibrationRead:
+    """One calibration session of the unit, voided or not: points, current fit, decision,
+    ranking, diagnostics, budget, and every fit it has had."""
+    unit = get_unit(session, serial)
+    return service.calibration_read(service.get_session_of(unit, session_id), reading)
+
+
 @router.post("/units/{serial}/calibrations/{session_id}/void")
 def void_calibration(
     serial: str, session_id: int, data: VoidCreate, session: SessionDep, user: ApiTechnician
@@ -110,14 +157,7 @@ def current_calibration(
     serial: str,
     session: SessionDep,
     user: ApiViewer,
-    reading: Annotated[
-        float | None,
-        Query(
-            allow_inf_nan=False,
-            description="reading (reading units, inside the valid range) at which to state the "
-            "uncertainty budget; default: the middle of the valid range",
-        ),
-    ] = None,
+    reading: BudgetReading = None,
 ) -> CurrentCalibrationRead:
     """The unit's current calibration: fit, decision, ranking, diagnostics, budget, due date,
     open flags."""

@@ -201,6 +201,34 @@ class BudgetRead(BaseModel):
     level: float
 
 
+class FitHistoryRead(BaseModel):
+    """One of a session's fits: the first when it was saved, then one per refit."""
+
+    id: int
+    family: str
+    passed: bool
+    current: bool
+    engine_version: str
+    fitted_at: datetime
+
+
+class CalibrationSummaryRead(BaseModel):
+    """A calibration session in a unit's history (GET .../calibrations/{id} has the rest)."""
+
+    id: int
+    performed_at: datetime
+    kind: SessionKind
+    operator: str
+    reference: str
+    recorded_by: str | None
+    family: str | None = Field(description="of the current fit")
+    passed: bool | None = Field(description="the current fit's decision")
+    current: bool = Field(description="the unit's current calibration")
+    voided: bool
+    void_reason: str | None
+    fits: int = Field(description="how many fits the session has had (refits add one each)")
+
+
 class CalibrationRead(BaseModel):
     id: int
     unit: str
@@ -230,6 +258,9 @@ class CalibrationRead(BaseModel):
     lack_of_fit: LackOfFitRead | None = Field(description="None when no reference value repeats")
     budget: BudgetRead = Field(
         description="at the middle of the valid range, or at the reading asked for"
+    )
+    fit_history: list[FitHistoryRead] = Field(
+        default_factory=list, description="every fit of the session, oldest first"
     )
     flags: list[FlagRead] = Field(
         default_factory=list,

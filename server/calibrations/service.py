@@ -30,8 +30,10 @@ from server.calibrations.schemas import (
     BudgetRowRead,
     CalibrationCreate,
     CalibrationRead,
+    CalibrationSummaryRead,
     CurrentCalibrationRead,
     DecisionRead,
+    FitHistoryRead,
     FitRead,
     LackOfFitRead,
     PointIn,
@@ -426,6 +428,38 @@ def calibration_read(record: CalibrationSession, reading: float | None = None) -
         suspects=suspects,
         lack_of_fit=LackOfFitRead(**lof) if lof is not None else None,
         budget=budget_of(record, result, reading),
+        fit_history=[
+            FitHistoryRead(
+                id=f.id,
+                family=f.family,
+                passed=f.passed,
+                current=f.is_current,
+                engine_version=f.engine_version,
+                fitted_at=f.created_at,
+            )
+            for f in record.fits
+        ],
+    )
+
+
+def summary_read(
+    record: CalibrationSession, current: CalibrationSession | None
+) -> CalibrationSummaryRead:
+    """A session as a line of the unit's history."""
+    stored = record.current_fit
+    return CalibrationSummaryRead(
+        id=record.id,
+        performed_at=record.performed_at,
+        kind=record.kind,
+        operator=record.operator,
+        reference=record.reference,
+        recorded_by=record.recorded_by,
+        family=stored.family if stored else None,
+        passed=stored.passed if stored else None,
+        current=current is not None and record.id == current.id,
+        voided=record.voided_at is not None,
+        void_reason=record.void_reason,
+        fits=len(record.fits),
     )
 
 

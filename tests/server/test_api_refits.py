@@ -298,3 +298,32 @@ def test_unit_status_rules(client, technician, viewer, shop):
         client.patch("/api/v1/units/Q-9", json={"notes": "x"}, headers=technician).status_code
         == 404
     )
+
+
+def test_a_sessions_fits_are_all_listed_after_a_refit(client, app, admin, viewer, shop):
+    done = finished(
+        client, app, viewer, patch(client, admin, {"tolerance_abs": 0.3}).json()["job"]["id"]
+    )
+    assert done["state"] == "done"
+    listed = client.get("/api/v1/units/P-2/calibrations", headers=viewer).json()
+    assert listed["total"] == 1
+    (line,) = listed["items"]
+    assert (line["fits"], line["passed"], line["current"], line["voided"]) == (
+        2,
+        False,
+        True,
+        False,
+    )
+    full = client.get(f"/api/v1/units/P-2/calibrations/{line['id']}", headers=viewer).json()
+    history = full["fit_history"]
+    assert [(h["current"], h["passed"]) for h in history] == [(False, True), (True, False)]
+    assert history[0]["fitted_at"] <= history[1]["fitted_at"]
+    p1 = client.get("/api/v1/units/P-1/calibrations", headers=viewer).json()["items"]
+    assert [x["current"] for x in p1] == [True, False]  # newest first
+    assert p1[0]["performed_at"] > p1[1]["performed_at"]
+    other = client.get(f"/api/v1/units/P-1/calibrations/{line['id']}", headers=viewer)
+    assert other.status_code == 404  # P-2's session is not P-1's
+    paged = client.get(
+        "/api/v1/units/P-1/calibrations", params={"per_page": 1, "page": 2}, headers=viewer
+    ).json()
+    assert paged["total"] == 2 and [x["id"] for x in paged["items"]] == [p1[1]["id"]]
