@@ -156,7 +156,8 @@ def _rangefinder_respond(t: Truth, mm: np.ndarray, rng: np.random.Generator) -> 
     rolloff = np.exp(-((below / p["width"]) ** 2))  # 1 at and above the knee, smooth below
     noise = p["sample_noise"] / np.sqrt(SAMPLES_PER_READING) * rng.standard_normal(mm.size)
     counts = p["gain"] * ideal * rolloff + noise
-    return np.clip(np.rint(counts), 0, 4095)
+    clipped: np.ndarray = np.clip(np.rint(counts), 0, 4095)
+    return clipped
 
 
 def _rangefinder_age(t: Truth, years: float, rng: np.random.Generator) -> Truth:

@@ -57,8 +57,8 @@ def parse_points_csv(data: bytes) -> list[PointIn]:
         try:
             points.append(
                 PointIn(
-                    reference_value=(row["reference_value"] or "").strip(),  # type: ignore[arg-type]
-                    reading=(row["reading"] or "").strip(),  # type: ignore[arg-type]
+                    reference_value=(row["reference_value"] or "").strip(),
+                    reading=(row["reading"] or "").strip(),
                     excluded=flag in TRUE,
                     exclude_reason=(row.get("exclude_reason") or "").strip() or None,
                 )

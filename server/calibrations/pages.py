@@ -273,7 +273,7 @@ def unit_context(
         "header_problem": header_problem(sensor_type),
         "table_step": default_step(sensor_type),
     }
-    history = []
+    history: list[dict[str, Any]] = []
     for record in sorted(unit.sessions, key=lambda s: (s.performed_at, s.id), reverse=True):
         stored = record.current_fit
         history.append(

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
+from functools import partial
 from typing import Annotated
 from urllib.parse import quote, urlencode
 
@@ -99,7 +100,9 @@ def fleet(
     first = page.offset + 1 if units else 0
     last = page.offset + len(units)
     last_page = max(1, -(-total // page.per_page))
-    link = dict(q=q, sensor_type=sensor_type, status=status, flag=flag, per_page=page.per_page)
+    link = partial(
+        fleet_url, q=q, sensor_type=sensor_type, status=status, flag=flag, per_page=page.per_page
+    )
     return render(
         request,
         "fleet/page.html",
@@ -120,8 +123,8 @@ def fleet(
         default_per_page=DEFAULT_PER_PAGE,
         types=[t.name for t in service.list_sensor_types(session)],
         statuses=list(UnitStatus),
-        prev_url=fleet_url(**link, page=min(page.page - 1, last_page)) if page.page > 1 else None,
-        next_url=fleet_url(**link, page=page.page + 1) if last < total else None,
+        prev_url=link(page=min(page.page - 1, last_page)) if page.page > 1 else None,
+        next_url=link(page=page.page + 1) if last < total else None,
         today=datetime.now(UTC).date(),
         unit_url=unit_url,
     )
