@@ -30,6 +30,7 @@ from server.calibrations.pages import (
     calibration_from_form,
     model_rows,
     parse_points,
+    point_rows,
 )
 from server.calibrations.schemas import CalibrationCreate, PointIn
 from server.db import SessionDep
@@ -205,22 +206,7 @@ def preview_of(sensor_type: SensorType, form: CalibrationForm, read: Points) -> 
             tolerance_rel=sensor_type.tolerance_rel,
             suspects=suspects,
         ).to_json(),
-        "points": [
-            {
-                "reference_value": p.reference_value,
-                "reading": p.reading,
-                "residual": float(fit.residuals[i]),
-                "used": bool(fit.used[i]),
-                "outside": bool(fit.used[i])
-                and abs(fit.residuals[i])
-                > charts.allowed_error(
-                    p.reference_value, sensor_type.tolerance_abs, sensor_type.tolerance_rel
-                ),
-                "reason": reasons.get(i),
-                "suspect": suspects.get(i),
-            }
-            for i, p in enumerate(read.points)
-        ],
+        "points": point_rows(read.points, fit, sensor_type, suspects),
         "residual_format": f"%.{residual_decimals(fit.rse)}f",
         "largest": largest,
         "suspects": sorted(suspects.items()),

@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime
-from typing import Annotated, Any
+from typing import Annotated, Any, Protocol
 
 from fastapi import APIRouter, Depends, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
@@ -307,7 +308,6 @@ def unit_context(
         and s.current_fit is not None
         and (s.performed_at, s.id) < (current.performed_at, current.id)
     ][:EARLIER_SHOWN]
-    reasons = dict(fit.excluded)
     stderr = fit.stderr
     diagnostics = service.stored_diagnostics(fit, stored)
     suspects = {int(s["index"]): str(s["reason"]) for s in diagnostics["suspects"]}
@@ -327,22 +327,7 @@ def unit_context(
             tolerance_rel=sensor_type.tolerance_rel,
             suspects=suspects,
         ).to_json(),
-        points=[
-            {
-                "reference_value": p.reference_value,
-                "reading": p.reading,
-                "residual": float(fit.residuals[i]),
-                "used": bool(fit.used[i]),
-                "outside": bool(fit.used[i])
-                and abs(fit.residuals[i])
-                > charts.allowed_error(
-                    p.reference_value, sensor_type.tolerance_abs, sensor_type.tolerance_rel
-                ),
-                "reason": reasons.get(i),
-                "suspect": suspects.get(i),
-            }
-            for i, p in enumerate(current.points)
-        ],
+        points=point_rows(current.points, fit, sensor_type, suspects),
         residual_format=f"%.{residual_decimals(fit.rse)}f",
         suspects=sorted(suspects.items()),
         lack_of_fit=diagnostics["lack_of_fit"],
@@ -380,6 +365,38 @@ def drift_context(unit: Unit) -> dict[str, Any]:
         due=due,
     )
     return {"drift_json": figure.to_json() if figure else None, "drift_note": None}
+
+
+class _PointLike(Protocol):
+    reference_value: float
+    reading: float
+
+
+def point_rows(
+    points: Sequence[_PointLike],
+    fit: shared.Fit,
+    sensor_type: SensorType,
+    suspects: Mapping[int, str],
+) -> list[dict[str, Any]]:
+    """The points table of a fit (unit page, /calibrate preview): each point with its residual,
+    whether it was used, outside the tolerance, excluded (why) or suspect (why)."""
+    reasons = dict(fit.excluded)
+    return [
+        {
+            "reference_value": p.reference_value,
+            "reading": p.reading,
+            "residual": float(fit.residuals[i]),
+            "used": bool(fit.used[i]),
+            "outside": bool(fit.used[i])
+            and abs(fit.residuals[i])
+            > charts.allowed_error(
+                p.reference_value, sensor_type.tolerance_abs, sensor_type.tolerance_rel
+            ),
+            "reason": reasons.get(i),
+            "suspect": suspects.get(i),
+        }
+        for i, p in enumerate(points)
+    ]
 
 
 def model_rows(ranking: dict[str, Any]) -> list[dict[str, Any]]:

@@ -9,7 +9,7 @@ from __future__ import annotations
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from tests.server.lines import READINGS, line_points, pot_type
+from tests.server.lines import READINGS, calibrate, line_points, pot_type
 
 TYPE = "Pot audit"
 NOW = datetime.now(UTC).replace(microsecond=0)
@@ -28,38 +28,35 @@ def ok(r: Any, status: int = 200) -> dict[str, Any]:
     return dict(r.json())
 
 
-def test_each_change_leaves_one_entry(client, app, admin, technician, viewer):
+def drifted_unit(
+    client: Any, admin: dict[str, str], technician: dict[str, str], serial: str
+) -> tuple[list[int], dict[str, Any]]:
+    """The type, one unit and two calibrations of it 2.0 deg apart (drift limit 0.5): the
+    session ids and the second one's answer."""
     ok(
         client.post(
-            "/api/v1/sensor-types",
-            json=pot_type(TYPE, drift_limit_abs=0.5),
-            headers=admin,
+            "/api/v1/sensor-types", json=pot_type(TYPE, drift_limit_abs=0.5), headers=admin
         ),
         201,
     )
     ok(
         client.post(
-            "/api/v1/units", json={"serial": "A-1", "sensor_type": TYPE}, headers=technician
+            "/api/v1/units", json={"serial": serial, "sensor_type": TYPE}, headers=technician
         ),
         201,
     )
-    for when, shift, seed in (
-        (NOW - timedelta(days=90), 0.0, 1),
-        (NOW - timedelta(days=1), 2.0, 2),
-    ):
-        ok(
-            client.post(
-                "/api/v1/units/A-1/calibrations",
-                json={
-                    "performed_at": when.isoformat(),
-                    "operator": "tom",
-                    "reference": "angle jig",
-                    "points": line_points(seed, shift=shift),
-                },
-                headers=technician,
-            ),
-            201,
+    answers = [
+        calibrate(client, technician, serial, when, line_points(seed, shift=shift))
+        for when, shift, seed in (
+            (NOW - timedelta(days=90), 0.0, 1),
+            (NOW - timedelta(days=1), 2.0, 2),
         )
+    ]
+    return [a["id"] for a in answers], answers[-1]
+
+
+def test_each_change_leaves_one_entry(client, app, admin, technician, viewer):
+    drifted_unit(client, admin, technician, "A-1")
     ok(
         client.post(
             "/api/v1/units/A-1/events",
@@ -144,39 +141,7 @@ def test_voiding_a_calibration_keeps_it_and_moves_everything_back(
 ):
     """Void the newer of two calibrations: the older one is current again, the drift flag closes,
     the voided one keeps its points, reason and who; a second void is refused."""
-    ok(
-        client.post(
-            "/api/v1/sensor-types",
-            json=pot_type(TYPE, drift_limit_abs=0.5),
-            headers=admin,
-        ),
-        201,
-    )
-    ok(
-        client.post(
-            "/api/v1/units", json={"serial": "V-1", "sensor_type": TYPE}, headers=technician
-        ),
-        201,
-    )
-    ids = []
-    for when, shift, seed in (
-        (NOW - timedelta(days=90), 0.0, 1),
-        (NOW - timedelta(days=1), 2.0, 2),
-    ):
-        saved = ok(
-            client.post(
-                "/api/v1/units/V-1/calibrations",
-                json={
-                    "performed_at": when.isoformat(),
-                    "operator": "tom",
-                    "reference": "angle jig",
-                    "points": line_points(seed, shift=shift),
-                },
-                headers=technician,
-            ),
-            201,
-        )
-        ids.append(saved["id"])
+    ids, saved = drifted_unit(client, admin, technician, "V-1")
     assert "drift" in {f["kind"] for f in saved["flags"]}
     url = f"/api/v1/units/V-1/calibrations/{ids[1]}/void"
 
