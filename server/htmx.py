@@ -64,6 +64,7 @@ def render(
     ctx.setdefault("user", getattr(request.state, "user", None))
     ctx.setdefault("attention_count", getattr(request.state, "attention_count", None))
     ctx["request"] = request
+    ctx.setdefault("partial", is_partial(request))  # templates ask this, never the headers
     ctx.setdefault("status_code", status_code)
     if is_partial(request):
         html = "".join(template.blocks[block](template.new_context(ctx)))

@@ -247,3 +247,19 @@ def test_only_admins_create_types(client, viewer) -> None:
     assert viewer.get("/types/new").status_code == 403
     assert client.post("/types", data=NEW_TYPE, follow_redirects=False).status_code == 403
     assert 'href="/types/new"' not in viewer.get("/types").text
+
+
+def test_a_finished_job_block_brings_the_nav_count_up_to_date(admin, app) -> None:
+    st = the_type(app, POT_TYPE)
+    r = admin.post(url(POT_TYPE), data=form_of(st, tolerance_abs="0.05"), follow_redirects=False)
+    job_id = int(r.headers["location"].rsplit("=", 1)[1])
+    app.state.jobs.wait(TIMEOUT_S)
+    block = admin.get(f"{url(POT_TYPE)}/jobs/{job_id}", headers={"HX-Request": "true"}).text
+    found = re.search(
+        r'<span id="nav-count" class="nav-count" hx-swap-oob="true"[^>]*>(\d+)<', block
+    )
+    assert found, block
+    page = admin.get("/attention").text  # the count the page itself shows now
+    shown = re.search(r'<span id="nav-count" class="nav-count"[^>]*>(\d+)</span>', page)
+    assert shown and found.group(1) == shown.group(1)
+    assert int(found.group(1)) >= 1  # the tighter tolerance failed some calibrations
