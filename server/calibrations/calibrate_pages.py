@@ -14,7 +14,7 @@ from typing import Annotated, Any
 
 import numpy as np
 from fastapi import APIRouter, Depends, File, Form, Request, UploadFile
-from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi.responses import HTMLResponse, Response
 from pydantic import ValidationError
 
 import shared
@@ -41,7 +41,7 @@ from server.fleet.pages import unit_url
 from server.fleet.receiving import awaiting_first_calibration
 from server.fleet.service import due_on, find_unit_by_serial, get_unit
 from server.formatting import residual_decimals
-from server.htmx import is_partial, render
+from server.htmx import redirect, render
 
 router = APIRouter(include_in_schema=False)
 
@@ -355,9 +355,7 @@ def save(
         return _not_saved(request, session, entered, read, exc)
     session.commit()
     target = f"{unit_url(found.serial)}?saved={record.id}"
-    if is_partial(request):
-        return Response(status_code=200, headers={"HX-Redirect": target, "Vary": "HX-Request"})
-    return RedirectResponse(target, status_code=303)
+    return redirect(request, target)
 
 
 def _not_saved(

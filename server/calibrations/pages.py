@@ -40,7 +40,7 @@ from server.fleet.service import (
     update_unit,
 )
 from server.formatting import residual_decimals
-from server.htmx import is_partial, render
+from server.htmx import redirect, render
 
 router = APIRouter(include_in_schema=False)
 
@@ -561,6 +561,4 @@ def add_calibration(
         )
     session.commit()
     target = f"{unit_url(unit.serial)}?saved={record.id}"
-    if is_partial(request):
-        return Response(status_code=200, headers={"HX-Redirect": target, "Vary": "HX-Request"})
-    return RedirectResponse(target, status_code=303)
+    return redirect(request, target)
