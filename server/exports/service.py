@@ -15,7 +15,14 @@ from server.calibrations.models import CalibrationSession, latest_session
 from server.errors import Invalid, NotFound
 from server.fleet.models import SensorType, Unit
 from server.formatting import residual_decimals
-from shared.exports import Table, c_header, conversion_table, table_to_csv, table_to_json
+from shared.exports import (
+    MAX_TABLE_ROWS,
+    Table,
+    c_header,
+    conversion_table,
+    table_to_csv,
+    table_to_json,
+)
 
 REPORT_PLOT_WIDTH = 640  # px (~169 mm): fits the printable width of A4 and Letter
 REPORT_PLOT_HEIGHT = 380
@@ -75,10 +82,12 @@ DEFAULT_ROWS = 200  # at most this many rows by default when a type's readings a
 
 
 def default_step(sensor_type: SensorType) -> float:
-    """Rows of a conversion table by default: every code for a span of whole codes, else the
+    """Rows of a conversion table by default: every code for a span of whole codes (every 2nd,
+    4th... code when there are more than ``MAX_TABLE_ROWS``, e.g. a 24-bit converter), else the
     smallest 1-2-5 step giving at most ``DEFAULT_ROWS`` rows (0.02 mV/V over 0..2.2 mV/V)."""
     if header_problem(sensor_type) is None:
-        return 1.0
+        codes = float(sensor_type.reading_max) - float(sensor_type.reading_min) + 1
+        return float(2 ** max(0, math.ceil(math.log2(codes / MAX_TABLE_ROWS))))
     span = float(sensor_type.reading_max) - float(sensor_type.reading_min)
     rough = span / DEFAULT_ROWS
     decade = 10.0 ** math.floor(math.log10(rough))
