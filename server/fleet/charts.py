@@ -1,7 +1,8 @@
 """plotly figures of one sensor type's fleet, from the units' stored current fits (nothing is
-refitted): every curve overlaid with the fleet median, and each fitted parameter's spread across
-the units with the ISO 13528 median and MADe (1.483 MAD) marked. Units with an open fleet-outlier
-flag are drawn in the flag's colour and named."""
+refitted): every curve overlaid with the fleet median, each unit's difference from that median
+against the type's tolerance, and each fitted parameter's spread across the units with the
+ISO 13528 median and MADe (1.483 MAD) marked. Units with an open fleet-outlier flag are drawn in
+the flag's colour and named."""
 
 from __future__ import annotations
 
@@ -15,8 +16,9 @@ import numpy as np
 import plotly.graph_objects as go
 
 import shared
-from server.calibrations.charts import CURVE, SUSPECT, TOLERANCE, Axes, _layout
+from server.calibrations.charts import CURVE, SUSPECT, TOLERANCE, Axes, _layout, allowed_error
 from server.formatting import measured
+from shared.acceptance import describe_tolerance
 from shared.fleet import Z_ACTION, median_mad
 
 CURVE_POINTS = 60  # readings per drawn curve: 200 units stay a light page
@@ -48,17 +50,28 @@ def _signal(m: Member) -> str:
     return f"<br>fleet outlier ({m.severity}{z})"
 
 
+def _rank(m: Member) -> int:
+    return {None: 0, "warning": 1, "action": 2}.get(m.severity, 0)
+
+
 def _drawing_order(members: Sequence[Member]) -> list[Member]:
     """Unflagged units first, then warnings, then actions: the flagged ones are drawn on top."""
-    rank = {None: 0, "warning": 1, "action": 2}
-    return sorted(members, key=lambda m: rank.get(m.severity, 0))
+    return sorted(members, key=_rank)
 
 
-def fleet_median(
-    fits: Sequence[shared.Fit], n: int = CURVE_POINTS
-) -> tuple[np.ndarray, np.ndarray]:
-    """``n`` readings spanning every unit's valid range and the median value of the units in
-    range there; NaN where fewer than half the units are in range."""
+@dataclass(frozen=True, slots=True)
+class FleetGrid:
+    """Every unit's curve evaluated once on readings spanning all the units' valid ranges, and
+    the fleet median there: what the median line and the difference plot are drawn from."""
+
+    reading: np.ndarray  # (n,) reading units
+    values: np.ndarray  # (units, n) value units, rows in the order of the fits; NaN out of range
+    median: np.ndarray  # (n,) NaN where fewer than half the units are in range
+
+
+def fleet_grid(fits: Sequence[shared.Fit], n: int = CURVE_POINTS) -> FleetGrid:
+    """``n`` readings spanning every unit's valid range, each unit's value there and the median
+    value of the units in range; the median is NaN where fewer than half the units are in range."""
     lo = min(f.valid_range[0] for f in fits)
     hi = max(f.valid_range[1] for f in fits)
     reading = np.linspace(lo, hi, n)
@@ -68,38 +81,36 @@ def fleet_median(
     median = np.full(n, np.nan)
     for j in np.flatnonzero(enough):
         median[j] = float(np.median(values[in_range[:, j], j]))
-    return reading, median
+    return FleetGrid(reading, values, median)
 
 
-def curves_figure(members: Sequence[Member], axes: Axes) -> go.Figure:
+def fleet_median(
+    fits: Sequence[shared.Fit], n: int = CURVE_POINTS
+) -> tuple[np.ndarray, np.ndarray]:
+    """``n`` readings spanning every unit's valid range and the median value of the units in
+    range there; NaN where fewer than half the units are in range."""
+    grid = fleet_grid(fits, n)
+    return grid.reading, grid.median
+
+
+def curves_figure(
+    members: Sequence[Member], axes: Axes, grid: FleetGrid | None = None
+) -> go.Figure:
     """Each unit's curve over its own valid range (thin grey; flagged units in the flag's colour,
-    thicker and named in the legend) and the fleet median as a dashed line.
+    thicker and named in the legend) and the fleet median as a dashed line (from ``grid``, the
+    members' ``fleet_grid``, when given).
 
     Traces are given to plotly as dicts (validated once, by the figure): with hundreds of units
     that halves the time of building each as a ``go.Scatter`` first."""
     vu, ru = axes.value_unit, axes.reading_unit
-    plain = [m for m in members if m.severity is None]
-    data: list[dict[str, Any]] = []
-    if plain:  # one legend entry for all the grey lines (clicking it hides them)
-        data.append(
-            {
-                "type": "scatter",
-                "x": [None],
-                "y": [None],
-                "mode": "lines",
-                "name": f"{'other units' if len(plain) < len(members) else 'units'} ({len(plain)})",
-                "legendgroup": "fleet",
-                "line": {"color": OTHER, "width": 1.5},
-                "hoverinfo": "skip",
-            }
-        )
+    data = _grey_legend(members)
     median_trace = None
     if len(members) >= 2:
-        reading, median = fleet_median([m.fit for m in members])
+        grid = grid or fleet_grid([m.fit for m in members])
         median_trace = {
             "type": "scatter",
-            "x": reading,
-            "y": median,
+            "x": grid.reading,
+            "y": grid.median,
             "mode": "lines",
             "name": "fleet median",
             "line": {"color": CURVE, "width": 2.5, "dash": "dash"},
@@ -112,32 +123,129 @@ def curves_figure(members: Sequence[Member], axes: Axes) -> go.Figure:
             data.append(median_trace)  # above the grey lines, under the flagged ones
             median_trace = None
         r = np.linspace(*m.fit.valid_range, CURVE_POINTS)
-        colour, width, _ = HIGHLIGHT.get(m.severity or "", (OTHER, 1.0, 0))
         data.append(
-            {
-                "type": "scatter",
-                "x": r,
-                "y": m.fit.to_value(r),
-                "mode": "lines",
-                "name": m.serial,
-                "legendgroup": "fleet" if m.severity is None else m.serial,
-                "showlegend": m.severity is not None,
-                "line": {
-                    "color": colour,
-                    "width": width,
-                    "dash": DASH.get(m.severity or "", "solid"),
-                },
-                "opacity": 1.0 if m.severity else 0.75,
-                "hovertemplate": (
-                    f"<b>{html.escape(m.serial)}</b>{_signal(m)}"
-                    f"<br>reading %{{x:.5~g}} {ru} → %{{y:.4~g}} {vu}<extra></extra>"
-                ),
-            }
+            _unit_trace(m, r, m.fit.to_value(r), f"reading %{{x:.5~g}} {ru} → %{{y:.4~g}} {vu}")
         )
     if median_trace is not None:
         data.append(median_trace)
     fig = go.Figure(data=data)
     return _layout(fig, x_title=axes.reading_title, y_title=axes.value_title, height=440)
+
+
+def _grey_legend(members: Sequence[Member]) -> list[dict[str, Any]]:
+    """One legend entry for all the grey lines (clicking it hides them), if there are any."""
+    plain = sum(m.severity is None for m in members)
+    if not plain:
+        return []
+    return [
+        {
+            "type": "scatter",
+            "x": [None],
+            "y": [None],
+            "mode": "lines",
+            "name": f"{'other units' if plain < len(members) else 'units'} ({plain})",
+            "legendgroup": "fleet",
+            "line": {"color": OTHER, "width": 1.5},
+            "hoverinfo": "skip",
+        }
+    ]
+
+
+def _unit_trace(m: Member, x: np.ndarray, y: np.ndarray, hover: str) -> dict[str, Any]:
+    """One unit's line: thin grey in the "fleet" legend group, or a flagged unit in the flag's
+    colour, width and dash with its own legend entry; the serial on hover above ``hover``."""
+    colour, width, _ = HIGHLIGHT.get(m.severity or "", (OTHER, 1.0, 0))
+    return {
+        "type": "scatter",
+        "x": x,
+        "y": y,
+        "mode": "lines",
+        "name": m.serial,
+        "legendgroup": "fleet" if m.severity is None else m.serial,
+        "showlegend": m.severity is not None,
+        "line": {"color": colour, "width": width, "dash": DASH.get(m.severity or "", "solid")},
+        "opacity": 1.0 if m.severity else 0.75,
+        "hovertemplate": f"<b>{html.escape(m.serial)}</b>{_signal(m)}<br>{hover}<extra></extra>",
+    }
+
+
+def difference_figure(
+    members: Sequence[Member],
+    axes: Axes,
+    grid: FleetGrid,
+    *,
+    tolerance_abs: float | None,
+    tolerance_rel: float | None,
+) -> go.Figure | None:
+    """Each unit's value minus the fleet median against reading, over the readings where the
+    median is drawn (``grid``, the members' ``fleet_grid``: nothing is evaluated again), coloured
+    as in ``curves_figure``; a zero line (the median itself) and, when the type has a tolerance,
+    ±(tolerance_abs + tolerance_rel % of the median value) dashed. None when the median is
+    nowhere defined."""
+    defined = np.flatnonzero(np.isfinite(grid.median))
+    if defined.size == 0:
+        return None
+    span = slice(int(defined[0]), int(defined[-1]) + 1)  # gaps inside stay gaps
+    reading = grid.reading[span]
+    median = grid.median[span]
+    difference = grid.values[:, span] - median
+    vu, ru = axes.value_unit, axes.reading_unit
+    data = _grey_legend(members)
+    guides: list[dict[str, Any]] = [
+        {
+            "type": "scatter",
+            "x": reading,
+            "y": np.where(np.isfinite(median), 0.0, np.nan),
+            "mode": "lines",
+            "name": "fleet median (zero)",
+            "line": {"color": CURVE, "width": 2.5, "dash": "dash"},
+            "customdata": median,
+            "hovertemplate": (
+                f"fleet median<br>reading %{{x:.5~g}} {ru} → %{{customdata:.4~g}} {vu}"
+                "<extra></extra>"
+            ),
+        }
+    ]
+    if tolerance_abs or tolerance_rel:
+        allowed = allowed_error(median, tolerance_abs, tolerance_rel)
+        tol_text = describe_tolerance(tolerance_abs, tolerance_rel)
+        for sign in (1.0, -1.0):
+            guides.append(
+                {
+                    "type": "scatter",
+                    "x": reading,
+                    "y": sign * allowed,
+                    "mode": "lines",
+                    "name": f"tolerance {tol_text} {vu}" if sign > 0 else "−tolerance",
+                    "legendgroup": "tolerance",
+                    "showlegend": sign > 0,
+                    "line": {"color": TOLERANCE, "width": 1.6, "dash": "dash"},
+                    "customdata": allowed,
+                    "hovertemplate": (
+                        f"tolerance ±%{{customdata:.3~g}} {vu} of the median"
+                        f"<br>at reading %{{x:.5~g}} {ru}<extra></extra>"
+                    ),
+                }
+            )
+    rows = sorted(range(len(members)), key=lambda i: _rank(members[i]))
+    for i in rows:
+        m = members[i]
+        if m.severity is not None and guides:
+            data.extend(guides)  # above the grey lines, under the flagged ones
+            guides = []
+        data.append(
+            _unit_trace(
+                m,
+                reading,
+                difference[i],
+                f"reading %{{x:.5~g}} {ru}: %{{y:+.3~g}} {vu} from the fleet median",
+            )
+        )
+    data.extend(guides)
+    fig = go.Figure(data=data)
+    return _layout(
+        fig, x_title=axes.reading_title, y_title=f"unit − fleet median ({vu})", height=360
+    )
 
 
 @dataclass(frozen=True, slots=True)

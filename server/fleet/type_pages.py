@@ -157,8 +157,9 @@ def _context(
 
 
 def fleet_view(session: Any, st: SensorType) -> dict[str, Any]:
-    """The type's fleet card: every calibrated, unretired unit's current curve overlaid, the
-    spread of the most used family's constants, and the units with an open fleet_outlier flag.
+    """The type's fleet card: every calibrated, unretired unit's current curve overlaid, each
+    unit's difference from the fleet median against the tolerance, the spread of the most used
+    family's constants, and the units with an open fleet_outlier flag.
     From the stored fits only (nothing is refitted)."""
     units = session.scalars(
         select(Unit)
@@ -211,6 +212,7 @@ def fleet_view(session: Any, st: SensorType) -> dict[str, Any]:
         "calibrated": len(members),
         "outliers": outliers,
         "curves_json": None,
+        "differences_json": None,
         "families": None,
         "parameters": [],
         "more_parameters": 0,
@@ -220,8 +222,13 @@ def fleet_view(session: Any, st: SensorType) -> dict[str, Any]:
         return view
     axes = Axes(st.quantity, st.value_unit, st.reading_unit)
     families = charts.families_of(members, st.families)
+    grid = charts.fleet_grid([m.fit for m in members])  # evaluated once, drawn twice
+    differences = charts.difference_figure(
+        members, axes, grid, tolerance_abs=st.tolerance_abs, tolerance_rel=st.tolerance_rel
+    )
     view.update(
-        curves_json=charts.curves_figure(members, axes).to_json(),
+        curves_json=charts.curves_figure(members, axes, grid).to_json(),
+        differences_json=differences.to_json() if differences is not None else None,
         families=families,
         parameters=[
             {"name": spread.name, "json": fig.to_json(), "spread": spread}

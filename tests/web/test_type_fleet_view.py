@@ -352,3 +352,181 @@ def test_fleet_median_is_left_out_where_fewer_than_half_are_in_range() -> None:
             assert got == pytest.approx(expected, rel=1e-12)
     assert np.isnan(median[(reading > 4) & (reading < 6)]).all()
     assert np.isfinite(median[(reading <= 4) | (reading >= 6)]).all()
+
+
+# -- the difference from the fleet median ------------------------------------------------------
+
+
+def expected_median(fits: list[shared.Fit], r: float) -> float:
+    """The median value at reading ``r`` of the units whose valid range holds it; NaN when fewer
+    than half the units do (the rule of the median line)."""
+    values = [float(f.to_value(r)) for f in fits if f.valid_range[0] <= r <= f.valid_range[1]]
+    return float(np.median(values)) if 2 * len(values) >= len(fits) else np.nan
+
+
+def test_differences_are_each_unit_minus_the_fleet_median(client, app) -> None:
+    html = client.get(page_url(LINE_POT)).text
+    fits = current_fits(app, LINE_POT)
+    assert len(fits) == 15
+    all_fits = list(fits.values())
+    traces = figure(html, "fleet-differences")["data"]
+    units = [t for t in traces if t.get("name") in fits]
+    assert sorted(t["name"] for t in units) == sorted(fits)  # one trace each, none retired
+    assert not [t for t in traces if t.get("name") in (RETIRED, UNCALIBRATED)]
+
+    # the readings are the median line's, where it is drawn
+    median = next(t for t in figure(html, "fleet-curves")["data"] if t["name"] == "fleet median")
+    grid, median_y = array(median["x"]), array(median["y"])
+    drawn = np.flatnonzero(np.isfinite(median_y))
+    span = grid[drawn[0] : drawn[-1] + 1]
+    for t in units:
+        np.testing.assert_array_equal(array(t["x"]), span)
+
+    centre = np.array([expected_median(all_fits, r) for r in span])
+    assert np.isfinite(centre).sum() > span.size // 2
+    for t in units:
+        fit = fits[t["name"]]
+        expected = fit.to_value(span) - centre  # NaN out of the unit's range or the median's
+        np.testing.assert_allclose(array(t["y"]), expected, rtol=0, atol=1e-9)
+        assert ODD in t["hovertemplate"] if t["name"] == ODD else t["name"] in t["hovertemplate"]
+
+    # the odd unit once more, from its stored constants alone, where every unit is in range
+    odd = next(t for t in units if t["name"] == ODD)
+    c = fits[ODD].params
+    x, y = array(odd["x"]), array(odd["y"])
+    inside = np.isfinite(y)
+    assert inside.sum() >= 10
+    np.testing.assert_allclose(y[inside], c["c0"] + c["c1"] * x[inside] - centre[inside], atol=1e-9)
+
+    zero = next(t for t in traces if t.get("name") == "fleet median (zero)")
+    assert zero["line"]["dash"] == "dash"
+    zero_y = array(zero["y"])
+    np.testing.assert_array_equal(np.isfinite(zero_y), np.isfinite(centre))
+    assert np.all(zero_y[np.isfinite(zero_y)] == 0.0)
+
+
+def test_differences_highlight_the_odd_unit_like_the_curves(client, app) -> None:
+    html = client.get(page_url(LINE_POT)).text
+    flags = open_outliers(app)
+    assert flags[ODD].severity is Severity.action
+    fits = current_fits(app, LINE_POT)
+    traces = figure(html, "fleet-differences")["data"]
+    units = [t for t in traces if t.get("name") in fits]
+    plain = [t for t in units if t["name"] not in flags]
+    odd = next(t for t in units if t["name"] == ODD)
+    assert plain
+    assert odd["showlegend"] is not False and all(t["showlegend"] is False for t in plain)
+    assert all(t["legendgroup"] == "fleet" for t in plain)
+    grey = [t for t in traces if t.get("legendgroup") == "fleet" and t["name"] not in fits]
+    assert len(grey) == 1 and f"({len(plain)})" in grey[0]["name"]  # one legend entry for them
+    assert odd["line"]["color"] not in {t["line"]["color"] for t in plain}
+    assert odd["line"]["width"] > max(t["line"]["width"] for t in plain)
+    assert odd["line"]["dash"] == "solid"
+    # drawn on top of the grey lines
+    assert traces.index(odd) > max(traces.index(t) for t in plain)
+    # and it is the unit farthest from the median
+    spread = {t["name"]: np.nanmax(np.abs(array(t["y"]))) for t in units}
+    assert max(spread, key=spread.__getitem__) == ODD
+    assert "difference from the fleet median" in html
+
+
+@pytest.mark.parametrize("tolerance", [(None, None), (0.4, 0.8)])
+def test_tolerance_lines_around_zero(client, app, tolerance) -> None:
+    """The fixture's tolerance (1.5 deg), then one with a relative part set on the type."""
+    if tolerance != (None, None):
+        with app.state.sessionmaker() as s:
+            st = s.scalar(sa.select(SensorType).where(SensorType.name == LINE_POT))
+            st.tolerance_abs, st.tolerance_rel = tolerance
+            s.commit()
+    with app.state.sessionmaker() as s:
+        st = s.scalar(sa.select(SensorType).where(SensorType.name == LINE_POT))
+        tol_abs, tol_rel = st.tolerance_abs or 0.0, st.tolerance_rel or 0.0
+    assert tol_abs == (1.5 if tolerance == (None, None) else 0.4)
+
+    html = client.get(page_url(LINE_POT)).text
+    all_fits = list(current_fits(app, LINE_POT).values())
+    lines = [
+        t for t in figure(html, "fleet-differences")["data"] if t.get("legendgroup") == "tolerance"
+    ]
+    assert len(lines) == 2
+    assert sum(t.get("showlegend", True) is not False for t in lines) == 1
+    upper, lower = sorted(lines, key=lambda t: -np.nanmean(array(t["y"])))
+    x = array(upper["x"])
+    np.testing.assert_array_equal(array(lower["x"]), x)
+    centre = np.array([expected_median(all_fits, r) for r in x])
+    allowed = tol_abs + tol_rel / 100.0 * np.abs(centre)
+    np.testing.assert_allclose(array(upper["y"]), allowed, rtol=1e-12)
+    np.testing.assert_allclose(array(lower["y"]), -allowed, rtol=1e-12)
+    for t in lines:
+        assert t["line"]["dash"] == "dash"
+    if tol_rel:  # the relative part really varies along the readings
+        finite = allowed[np.isfinite(allowed)]
+        assert finite.max() - finite.min() > 1.0
+    assert "red dashed" in html
+
+
+def test_fewer_than_two_calibrated_units_have_no_difference_plot(client) -> None:
+    html = client.get(page_url(POT_TYPE)).text  # one calibrated unit in the seed
+    assert "Only one unit of this type is calibrated" in html
+    assert 'id="fleet-differences"' not in html
+    assert "difference from the fleet median" not in html
+
+
+def test_two_calibrated_units_differ_from_their_mean_by_half_their_gap(client, app) -> None:
+    html = client.get(page_url(IR_TYPE)).text
+    fits = current_fits(app, IR_TYPE)
+    assert len(fits) == 2
+    traces = {
+        t["name"]: t for t in figure(html, "fleet-differences")["data"] if t.get("name") in fits
+    }
+    (a, fa), (b, fb) = sorted(fits.items())
+    x = array(traces[a]["x"])
+    gap = (fa.to_value(x) - fb.to_value(x)) / 2  # NaN unless both are in range
+    both = np.isfinite(gap)
+    assert both.sum() >= 10
+    np.testing.assert_allclose(array(traces[a]["y"])[both], gap[both], rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(array(traces[b]["y"])[both], -gap[both], rtol=1e-9, atol=1e-9)
+
+
+def _lines(ranges: list[tuple[float, float]]) -> list[charts.Member]:
+    members = []
+    for k, (lo, hi) in enumerate(ranges):
+        r = np.linspace(lo, hi, 6)
+        wobble = 0.01 * np.array([1, -1, 0, 1, -1, 0])
+        fit = shared.fit("line", r, 1.0 + k + 2.0 * r + wobble)
+        members.append(charts.Member(serial=f"U{k}", fit=fit))
+    return members
+
+
+def test_differences_leave_a_gap_where_the_median_is_not_drawn() -> None:
+    """Five lines over different ranges: between 4 and 6 only two of five cover the reading."""
+    ranges = [(0, 10), (0, 10), (0, 4), (0, 4), (6, 10)]
+    members = _lines(ranges)
+    axes = charts.Axes("angle", "deg", "counts")
+    grid = charts.fleet_grid([m.fit for m in members], n=41)
+    fig = charts.difference_figure(members, axes, grid, tolerance_abs=None, tolerance_rel=None)
+    assert fig is not None
+    data = json.loads(fig.to_json())["data"]
+    assert not [t for t in data if t.get("legendgroup") == "tolerance"]  # no tolerance: no lines
+    for m, (lo, hi) in zip(members, ranges, strict=True):
+        t = next(t for t in data if t.get("name") == m.serial)
+        x, y = array(t["x"]), array(t["y"])
+        for r, got in zip(x, y, strict=True):
+            inside = [f.fit for f, (a, b) in zip(members, ranges, strict=True) if a <= r <= b]
+            if 2 * len(inside) < len(members) or not lo <= r <= hi:
+                assert np.isnan(got), (m.serial, r)
+            else:
+                centre = np.median([f.params["c0"] + f.params["c1"] * r for f in inside])
+                own = m.fit.params["c0"] + m.fit.params["c1"] * r
+                assert got == pytest.approx(own - centre, abs=1e-12)
+        assert np.isnan(y[(x > 4) & (x < 6)]).all()
+
+
+def test_no_difference_plot_where_the_median_is_nowhere_drawn() -> None:
+    members = _lines([(0, 3), (4, 7), (8, 11)])  # never two of three in range together
+    grid = charts.fleet_grid([m.fit for m in members])
+    assert np.isnan(grid.median).all()
+    axes = charts.Axes("angle", "deg", "counts")
+    assert (
+        charts.difference_figure(members, axes, grid, tolerance_abs=1.0, tolerance_rel=None) is None
+    )
