@@ -168,8 +168,10 @@ def get_sensor_type(session: Session, name: str, *, field: str | None = None) ->
 
 def create_unit(session: Session, data: UnitCreate, actor: str | None = None) -> Unit:
     sensor_type = get_sensor_type(session, data.sensor_type, field="sensor_type")
-    if session.scalar(select(Unit).where(Unit.serial == data.serial)) is not None:
-        raise Conflict(f"unit {data.serial!r} exists already", field="serial")
+    same = find_unit_by_serial(session, data.serial)  # ignoring case, as a scanner looks up
+    if same is not None:
+        detail = "" if same.serial == data.serial else f" as {same.serial!r}"
+        raise Conflict(f"unit {data.serial!r} exists already{detail}", field="serial")
     unit = Unit(
         serial=data.serial,
         sensor_type=sensor_type,

@@ -146,6 +146,12 @@ def test_unit_errors(client, admin):
         "/api/v1/units", headers=admin, json={"serial": "X", "sensor_type": "IR ranger"}
     )
     assert dup.status_code == 409 and dup.json()["field"] == "serial"
+    # a scanner finds serials ignoring case, so "x" would make "X" ambiguous
+    other_case = client.post(
+        "/api/v1/units", headers=admin, json={"serial": "x", "sensor_type": "IR ranger"}
+    )
+    assert other_case.status_code == 409
+    assert other_case.json()["detail"] == "unit 'x' exists already as 'X'"
     blank = client.post(
         "/api/v1/units", headers=admin, json={"serial": "  ", "sensor_type": "IR ranger"}
     )
