@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
-from datetime import UTC, datetime
+from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Annotated, Any
 
+import numpy as np
 from fastapi import Depends, Request
 from sqlalchemy import DateTime, Engine, MetaData, create_engine, event
 from sqlalchemy.engine import Dialect, make_url
@@ -48,6 +50,27 @@ class UTCDateTime(TypeDecorator[datetime]):
 
 def utcnow() -> datetime:
     return datetime.now(UTC)
+
+
+def json_safe(x: Any) -> Any:
+    """A value for a JSON column, recursively: numpy arrays and scalars to Python, non-finite
+    floats to None (PostgreSQL's JSON has no NaN), dates and datetimes to ISO text. String
+    enums stay as they are (they are strings)."""
+    if isinstance(x, dict):
+        return {str(k): json_safe(v) for k, v in x.items()}
+    if isinstance(x, list | tuple):
+        return [json_safe(v) for v in x]
+    if isinstance(x, np.ndarray):
+        return [json_safe(v) for v in x.tolist()]
+    if isinstance(x, np.bool_ | bool):
+        return bool(x)
+    if isinstance(x, np.integer):
+        return int(x)
+    if isinstance(x, float | np.floating):
+        return float(x) if math.isfinite(x) else None
+    if isinstance(x, datetime | date):
+        return x.isoformat()
+    return x
 
 
 def make_engine(url: str, *, busy_timeout_ms: int = 5000) -> Engine:

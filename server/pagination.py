@@ -6,6 +6,8 @@ from typing import Annotated, Generic, TypeVar
 
 from fastapi import Query
 from pydantic import BaseModel
+from sqlalchemy import Select, func, select
+from sqlalchemy.orm import Session
 
 
 class PageParams(BaseModel):
@@ -32,3 +34,10 @@ class Page(BaseModel, Generic[T]):
     total: int
     page: int
     per_page: int
+
+
+def paged(session: Session, query: Select[T], page: PageParams) -> tuple[list[T], int]:
+    """One page of ``query`` (already ordered) and how many rows it has in all."""
+    total = session.scalar(select(func.count()).select_from(query.subquery())) or 0
+    rows = session.scalars(query.offset(page.offset).limit(page.per_page))
+    return list(rows), total

@@ -1,39 +1,24 @@
 """Write and read the audit log. Entries are added in the same transaction as the change they
 describe (so a change rolled back leaves no entry) and are never updated or deleted.
 
-Actions: ``calibration.saved``, ``calibration.voided``, ``unit.registered``, ``unit.updated``,
-``unit.installed``, ``unit.removed``, ``sensor_type.created``, ``sensor_type.updated``,
-``refit.started``, ``refit.finished``, ``flag.acknowledged``. Services flush, never commit.
+Actions: ``calibration.saved``, ``calibration.voided``, ``calibration.refitted``,
+``unit.registered``, ``unit.updated``, ``unit.installed``, ``unit.removed``,
+``sensor_type.created``, ``sensor_type.updated``, ``refit.started``, ``refit.finished``,
+``flag.acknowledged``. Services flush, never commit.
 """
 
 from __future__ import annotations
 
-import math
-from datetime import date, datetime
 from typing import Any
 
-from sqlalchemy import Select, func, select
+from sqlalchemy import Select, select
 from sqlalchemy.orm import Session
 
 from server.audit.models import AuditEntry
-from server.pagination import PageParams
+from server.db import json_safe
+from server.pagination import PageParams, paged
 
 SUMMARY_MAX = 500
-
-
-def _plain(x: Any) -> Any:
-    """JSON-safe detail (dates as ISO text, non-finite floats as None)."""
-    if isinstance(x, dict):
-        return {str(k): _plain(v) for k, v in x.items()}
-    if isinstance(x, list | tuple):
-        return [_plain(v) for v in x]
-    if isinstance(x, datetime | date):
-        return x.isoformat()
-    if isinstance(x, float) and not math.isfinite(x):
-        return None
-    if hasattr(x, "value") and isinstance(x.value, str):  # an enum member
-        return x.value
-    return x
 
 
 def record(
@@ -52,7 +37,7 @@ def record(
         subject_kind=subject_kind,
         subject=subject,
         summary=summary[:SUMMARY_MAX],
-        detail=_plain(detail),
+        detail=json_safe(detail),
     )
     session.add(entry)
     session.flush()
@@ -85,13 +70,7 @@ def list_entries(
 ) -> tuple[list[AuditEntry], int]:
     """Entries, newest first."""
     query = _filtered(subject_kind, subject, actor, action)
-    total = session.scalar(select(func.count()).select_from(query.subquery())) or 0
-    entries = session.scalars(
-        query.order_by(AuditEntry.at.desc(), AuditEntry.id.desc())
-        .offset(page.offset)
-        .limit(page.per_page)
-    )
-    return list(entries), total
+    return paged(session, query.order_by(AuditEntry.at.desc(), AuditEntry.id.desc()), page)
 
 
 def entries_of_unit(session: Session, serial: str, limit: int = 50) -> list[AuditEntry]:

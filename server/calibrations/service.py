@@ -264,7 +264,7 @@ def get_session_of(unit: Unit, session_id: int) -> CalibrationSession:
     """One of the unit's calibration sessions, by id."""
     found = next((s for s in unit.sessions if s.id == session_id), None)
     if found is None:
-        raise NotFound(f"{unit.serial} has no calibration {session_id}")
+        raise NotFound(f"unit {unit.serial!r} has no calibration {session_id}")
     return found
 
 

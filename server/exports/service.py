@@ -168,18 +168,10 @@ def firmware_header(unit: Unit, lut_max_error: float | None = None) -> Download:
     return Download(text, "text/x-c; charset=utf-8", f"{file_stem(unit.serial)}.h")
 
 
-def session_of(unit: Unit, session_id: int) -> CalibrationSession:
-    """One calibration session of this unit; NotFound for another unit's or an unknown one."""
-    found = next((s for s in unit.sessions if s.id == session_id), None)
-    if found is None:
-        raise NotFound(f"unit {unit.serial!r} has no calibration {session_id}")
-    return found
-
-
 def report_context(unit: Unit, session_id: int) -> dict[str, Any]:
     """What reports/page.html shows for one session: the stored record read back (points,
     fit, decision, budget at mid-range), the sensor type and a static curve figure."""
-    record = session_of(unit, session_id)
+    record = calibrations.get_session_of(unit, session_id)
     calibration = calibrations.calibration_read(record)
     fit, _ = calibrations.fit_of(record)
     sensor_type = unit.sensor_type

@@ -27,7 +27,6 @@ Services flush, never commit.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from datetime import date, datetime
 from typing import Any
@@ -39,13 +38,13 @@ from sqlalchemy.orm import Session, object_session, selectinload
 import shared
 from server.audit import service as audit
 from server.calibrations.models import CalibrationSession, FitRecord, stored_fit, valid_sessions
-from server.db import utcnow
+from server.db import json_safe, utcnow
 from server.errors import Conflict, Invalid, NotFound
 from server.flags.models import EventKind, Flag, FlagKind, InstallationEvent, Severity
 from server.flags.schemas import EventCreate, EventRead, FlagRead
 from server.fleet.models import SensorType, Unit, UnitStatus
 from server.fleet.service import store_due
-from server.pagination import PageParams
+from server.pagination import PageParams, paged
 from shared.drift import as_found, compare
 from shared.fleet import fleet_outliers
 
@@ -77,26 +76,6 @@ class Found:
     key: str
     message: str
     evidence: dict[str, Any]
-
-
-def _clean(x: Any) -> Any:
-    """JSON-safe: numpy scalars to Python, non-finite floats to None (PostgreSQL's JSON has no
-    NaN), recursively."""
-    if isinstance(x, dict):
-        return {str(k): _clean(v) for k, v in x.items()}
-    if isinstance(x, list | tuple):
-        return [_clean(v) for v in x]
-    if isinstance(x, np.ndarray):
-        return [_clean(v) for v in x.tolist()]
-    if isinstance(x, np.bool_ | bool):
-        return bool(x)
-    if isinstance(x, np.integer):
-        return int(x)
-    if isinstance(x, float | np.floating):
-        return float(x) if math.isfinite(x) else None
-    if isinstance(x, datetime | date):
-        return x.isoformat()
-    return x
 
 
 def _g(x: float, digits: int = 3) -> str:
@@ -268,7 +247,7 @@ def _failed(unit: Unit, last: CalibrationSession, st: SensorType) -> Found | Non
         severity=Severity.action,
         key=f"failed_acceptance:{unit.id}:{last.id}",
         message=f"current calibration of {last.performed_at:%Y-%m-%d} failed acceptance{detail}",
-        evidence=_clean(
+        evidence=json_safe(
             {
                 "session_id": last.id,
                 "performed_at": last.performed_at,
@@ -312,7 +291,7 @@ def _drift(
         severity=Severity.action,
         key=f"drift:{unit.id}:{prev.id}:{cur.id}",
         message=message,
-        evidence=_clean(
+        evidence=json_safe(
             {
                 **_between(prev, cur),
                 "max_deviation": found.max_deviation,
@@ -391,7 +370,7 @@ def _out_in_service(
         severity=Severity.action,
         key=f"out_of_tolerance_in_service:{unit.id}:{prev.id}:{cur.id}",
         message=message,
-        evidence=_clean(
+        evidence=json_safe(
             {
                 **_between(prev, cur),
                 "n_judged": found.n_judged,
@@ -431,7 +410,7 @@ def _overdue(unit: Unit, last: CalibrationSession, st: SensorType, today: date) 
             f"(last calibrated {last.performed_at:%Y-%m-%d}, interval {st.interval_days} days"
             f"{', shortened by drift' if due.shortened else ''})"
         ),
-        evidence=_clean(
+        evidence=json_safe(
             {
                 "due": due.due,
                 "days_overdue": late,
@@ -476,7 +455,7 @@ def _outliers(current: dict[str, tuple[Unit, CalibrationSession]], st: SensorTyp
                     f"({_g(score.value_at_max, 4)} {st.value_unit} against the median "
                     f"{_g(centre, 4)} {st.value_unit})"
                 ),
-                evidence=_clean(
+                evidence=json_safe(
                     {
                         "session_id": record.id,
                         "z": score.z_at_max,
@@ -712,14 +691,7 @@ def list_flags(
 ) -> tuple[list[Flag], int]:
     """Flags, open ones first, newest first within."""
     query = _filtered(kind, sensor_type, open_, acknowledged)
-    total = session.scalar(select(func.count()).select_from(query.subquery())) or 0
-    flags = session.scalars(
-        query.options(selectinload(Flag.unit))
-        .order_by(*ORDER)
-        .offset(page.offset)
-        .limit(page.per_page)
-    )
-    return list(flags), total
+    return paged(session, query.options(selectinload(Flag.unit)).order_by(*ORDER), page)
 
 
 def flags_of(unit: Unit) -> list[Flag]:

@@ -29,7 +29,7 @@ from server.fleet.schemas import (
     UnitRead,
     UnitUpdate,
 )
-from server.pagination import PageParams
+from server.pagination import PageParams, paged
 from shared.drift import compare
 from shared.fleet import DueDate, due_date
 
@@ -268,14 +268,7 @@ def list_units(
     if q and q.strip():
         pattern = "%" + q.strip().lower().replace("%", r"\%").replace("_", r"\_") + "%"
         query = query.where(func.lower(Unit.serial).like(pattern, escape="\\"))
-    total = session.scalar(select(func.count()).select_from(query.subquery())) or 0
-    units = session.scalars(
-        query.options(*_with_history())
-        .order_by(Unit.serial)
-        .offset(page.offset)
-        .limit(page.per_page)
-    )
-    return list(units), total
+    return paged(session, query.options(*_with_history()).order_by(Unit.serial), page)
 
 
 def find_unit_by_serial(session: Session, serial: str) -> Unit | None:

@@ -138,16 +138,23 @@ def _catalog_order(chosen: list[str]) -> list[str]:
     return known + sorted(set(shared.FAMILIES) - set(known))
 
 
+def _settings(form: TypeForm) -> dict[str, Any]:
+    """What fleet/settings_fields.html needs besides the units: the form and the catalog."""
+    return {
+        "form": form,
+        "families": _catalog_order(form.families),
+        "formulas": {name: shared.get_family(name).formula for name in shared.FAMILIES},
+        "noise_choices": list(NoiseIn),
+    }
+
+
 def _context(
     session: Any, st: SensorType, user: User, form: TypeForm, job_id: int | None = None
 ) -> dict[str, Any]:
     units = session.scalar(select(func.count()).where(Unit.sensor_type_id == st.id)) or 0
     return {
+        **_settings(form),
         "sensor_type": st,
-        "form": form,
-        "families": _catalog_order(form.families),
-        "formulas": {name: shared.get_family(name).formula for name in shared.FAMILIES},
-        "noise_choices": list(NoiseIn),
         "units": units,
         "jobs": refits.jobs_of(session, st),
         "just_started": job_id,
@@ -281,11 +288,8 @@ NEW_SETTINGS = TypeForm(
 
 def _new_context(new: NewType, form: TypeForm) -> dict[str, Any]:
     return {
+        **_settings(form),
         "new": new,
-        "form": form,
-        "families": _catalog_order(form.families),
-        "formulas": {name: shared.get_family(name).formula for name in shared.FAMILIES},
-        "noise_choices": list(NoiseIn),
         "value_unit": new.value_unit or "value units",
         "reading_unit": new.reading_unit or "reading units",
     }
