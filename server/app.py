@@ -23,11 +23,14 @@ from server.exports import pages as export_pages
 from server.exports import routes as export_routes
 from server.flags import pages as flag_pages
 from server.flags import routes as flag_routes
-from server.flags.service import bring_due_dates_up, sweep_overdue
+from server.flags.fleet import run_fleet_job
+from server.flags.service import bring_due_dates_up, queue_sweep, run_sweep_job, sweep_overdue
 from server.fleet import pages as fleet_pages
 from server.fleet import receive_pages, type_pages
 from server.fleet import routes as fleet_routes
 from server.htmx import WEB
+from server.jobs.models import JobKind
+from server.jobs.runner import JobRunner
 from server.migrate import upgrade
 
 SWEEP_EVERY_S = 3600.0  # how often units that time alone made overdue get their flag
@@ -35,28 +38,39 @@ PLOTLY_JS = Path(plotly.__file__).parent / "package_data" / "plotly.min.js"
 
 
 def create_app(settings: Settings | None = None, *, migrate: bool = True) -> FastAPI:
-    """The app for ``settings``. On start the database is upgraded to the newest schema, jobs a
-    stopped server left are marked failed, due dates never stored are stored and the overdue
-    flags time alone has brought are raised; while it serves, that overdue sweep runs hourly."""
+    """The app for ``settings``. On start the database is upgraded to the newest schema, due
+    dates never stored are stored and the overdue flags time alone has brought are raised;
+    while it serves, its job runner claims and runs queued jobs (any process may) and an
+    overdue sweep is queued hourly."""
     settings = settings or Settings()
     engine = make_engine(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms)
     if migrate:
         upgrade(engine)
 
     factory = make_sessionmaker(engine)
+    read_factory = make_sessionmaker(engine, read_only=True)
     if migrate:
         with factory() as session:
-            if refits.fail_interrupted(session):
-                session.commit()
             if bring_due_dates_up(session) + sweep_overdue(session):
                 session.commit()
-    jobs = refits.JobRunner(factory)
+    jobs = JobRunner(
+        factory,
+        read_factory,
+        {
+            JobKind.refit: refits.run_refit,
+            JobKind.fleet: run_fleet_job,
+            JobKind.overdue_sweep: run_sweep_job,
+        },
+        poll_s=settings.job_poll_s,
+        stale_after_s=settings.job_stale_after_s,
+    )
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        jobs.every(SWEEP_EVERY_S, sweep_overdue, "overdue sweep")
+        jobs.start()
+        jobs.every(SWEEP_EVERY_S, lambda: queue_sweep(factory), "overdue sweep")
         yield
-        jobs.shutdown()  # a running refit finishes (or fails) before the database goes
+        jobs.shutdown()  # a running job stops and goes back to the queue for the next start
         engine.dispose()
 
     app = FastAPI(
@@ -68,6 +82,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.settings = settings
     app.state.engine = engine
     app.state.sessionmaker = factory
+    app.state.read_sessionmaker = read_factory
     app.state.jobs = jobs
     errors.install(app)
 

@@ -15,7 +15,10 @@ class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix="SENSORLEDGER_", extra="ignore")
 
     database_url: str = f"sqlite:///{DEFAULT_DB_PATH}"
-    sqlite_busy_timeout_ms: int = 5000
+    # how long a SQLite writer waits for the write lock before giving up (503, try again)
+    sqlite_busy_timeout_ms: int = 30_000
+    job_poll_s: float = 1.0  # how often a server looks for jobs queued by other processes
+    job_stale_after_s: float = 60.0  # a running job silent this long is resumed elsewhere
     session_days: int = 14  # how long a browser sign-in lasts
 
 

@@ -10,7 +10,7 @@ from typing import Annotated, Any
 
 import numpy as np
 from fastapi import Depends, Request
-from sqlalchemy import DateTime, Engine, MetaData, create_engine, event
+from sqlalchemy import Connection, DateTime, Engine, MetaData, create_engine, event
 from sqlalchemy.engine import Dialect, make_url
 from sqlalchemy.orm import DeclarativeBase, Session, sessionmaker
 from sqlalchemy.types import TypeDecorator
@@ -73,35 +73,70 @@ def json_safe(x: Any) -> Any:
     return x
 
 
-def make_engine(url: str, *, busy_timeout_ms: int = 5000) -> Engine:
-    """An engine for ``url``; SQLite files get WAL, a busy timeout and enforced foreign keys."""
+WRITE = "sensorledger_write"  # execution option: this connection's transactions will write
+DEFAULT_BUSY_TIMEOUT_MS = 30_000
+
+
+def make_engine(url: str, *, busy_timeout_ms: int = DEFAULT_BUSY_TIMEOUT_MS) -> Engine:
+    """An engine for ``url``; SQLite files get WAL, a busy timeout and enforced foreign keys.
+
+    SQLite transactions are begun by us, not by the driver: ``BEGIN IMMEDIATE`` on connections
+    carrying the ``WRITE`` execution option (see ``writer``), a plain deferred ``BEGIN`` on the
+    others. A writer thus takes the database's single write lock before its first read and waits
+    for it up to the busy timeout, instead of reading first and failing at its first write with
+    "database is locked" (SQLite cannot wait there: another writer may have changed what was
+    read). Readers in WAL mode never wait."""
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
-        return create_engine(url, pool_pre_ping=True)
+        return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=20)
     if parsed.database and parsed.database != ":memory:":
         Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
     engine = create_engine(
-        url, connect_args={"check_same_thread": False, "timeout": busy_timeout_ms / 1000}
+        url,
+        connect_args={"check_same_thread": False, "timeout": busy_timeout_ms / 1000},
+        pool_size=10,
+        max_overflow=30,
     )
 
     @event.listens_for(engine, "connect")
     def _pragmas(dbapi_conn: Any, _record: Any) -> None:
+        dbapi_conn.isolation_level = None  # the driver issues no BEGIN of its own; see _begin
         cur = dbapi_conn.cursor()
         cur.execute("PRAGMA journal_mode=WAL")
         cur.execute(f"PRAGMA busy_timeout={int(busy_timeout_ms)}")
         cur.execute("PRAGMA foreign_keys=ON")
         cur.close()
 
+    @event.listens_for(engine, "begin")
+    def _begin(conn: Connection) -> None:
+        write = conn.get_execution_options().get(WRITE, False)
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if write else "BEGIN")
+
     return engine
 
 
-def make_sessionmaker(engine: Engine) -> sessionmaker[Session]:
-    return sessionmaker(engine, expire_on_commit=False)
+def writer(engine: Engine) -> Engine:
+    """``engine`` for transactions that write: SQLite takes the write lock at BEGIN (waiting for
+    it up to the busy timeout); other databases are unchanged (row locks do the work there)."""
+    return engine.execution_options(**{WRITE: True})
+
+
+def make_sessionmaker(engine: Engine, *, read_only: bool = False) -> sessionmaker[Session]:
+    """Sessions that may write (the default: SQLite takes the write lock at BEGIN), or with
+    ``read_only`` sessions that only read (never wait in WAL mode; a write in them may fail
+    with "database is locked" under contention)."""
+    return sessionmaker(engine if read_only else writer(engine), expire_on_commit=False)
+
+
+READ_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 
 
 def get_session(request: Request) -> Iterator[Session]:
-    """One session per request; the route commits, this only closes (rolling back the rest)."""
-    with request.app.state.sessionmaker() as session:
+    """One session per request; the route commits, this only closes (rolling back the rest).
+    A request that may write (any method but GET, HEAD, OPTIONS) gets a writing session."""
+    state = request.app.state
+    factory = state.read_sessionmaker if request.method in READ_METHODS else state.sessionmaker
+    with factory() as session:
         yield session
 
 

@@ -2,10 +2,12 @@
 
 from server.accounts.models import Token, User
 from server.audit.models import AuditEntry
-from server.calibrations.models import CalibrationSession, FitRecord, Point, RefitJob
+from server.calibrations.models import CalibrationSession, FitRecord, Point
 from server.db import Base
 from server.flags.models import Flag, InstallationEvent
 from server.fleet.models import SensorType, Unit
+from server.idempotency.models import IdempotentResponse
+from server.jobs.models import Job
 
 __all__ = [
     "AuditEntry",
@@ -13,9 +15,10 @@ __all__ = [
     "CalibrationSession",
     "FitRecord",
     "Flag",
+    "IdempotentResponse",
     "InstallationEvent",
+    "Job",
     "Point",
-    "RefitJob",
     "SensorType",
     "Token",
     "Unit",

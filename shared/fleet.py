@@ -258,11 +258,17 @@ def _interior(lo: float, hi: float, n: int) -> Array:
     return np.asarray(np.linspace(lo, hi, n + 2)[1:-1], dtype=float)
 
 
-def _probes(
-    fits: Mapping[str, Fit], probe_readings: ArrayLike | None, n_probes: int
+def choose_probes(
+    ranges: Mapping[str, tuple[float, float]],
+    probe_readings: ArrayLike | None = None,
+    n_probes: int = N_PROBES,
 ) -> tuple[Array, str, dict[str, str]]:
-    """Probe readings, how they were chosen, and the units skipped (serial -> reason)."""
-    ranges = {s: f.valid_range for s, f in fits.items()}
+    """Probe readings for units with these valid ranges (serial -> (low, high), reading units),
+    how they were chosen, and the units skipped (serial -> reason); see ``fleet_outliers``."""
+    if not ranges:
+        raise BadInput("no units to compare")
+    if n_probes < 1:
+        raise BadInput("at least one probe reading is needed")
     skipped: dict[str, str] = {}
     if probe_readings is not None:
         probes = np.atleast_1d(np.asarray(probe_readings, dtype=float)).ravel()
@@ -345,15 +351,39 @@ def fleet_outliers(
         raise BadInput(f"method must be 'mad' or 'algorithm_a', not {method!r}")
     if not fits:
         raise BadInput("no units to compare")
-    if n_probes < 1:
-        raise BadInput("at least one probe reading is needed")
-    probes, basis, skipped = _probes(fits, probe_readings, n_probes)
-    serials = tuple(s for s in fits if s not in skipped)
+    probes, basis, skipped = choose_probes(
+        {s: f.valid_range for s, f in fits.items()}, probe_readings, n_probes
+    )
+    values = {s: f.to_value(probes) for s, f in fits.items() if s not in skipped}
+    return score_fleet(
+        values, probes, basis, skipped, method=method, exact=exact, min_units=min_units
+    )
+
+
+def score_fleet(
+    values_at_probes: Mapping[str, ArrayLike],
+    probes: ArrayLike,
+    basis: str,
+    skipped: Mapping[str, str] | None = None,
+    *,
+    method: Method = "mad",
+    exact: bool = False,
+    min_units: int = MIN_UNITS,
+) -> FleetResult:
+    """The scoring half of ``fleet_outliers``, from each unit's curve already evaluated at the
+    probe readings (serial -> values, value units), e.g. values stored with each unit's current
+    fit; ``probes``, ``basis`` and ``skipped`` as ``choose_probes`` gave them. The result is the
+    same as ``fleet_outliers`` on the fits themselves."""
+    if method not in ("mad", "algorithm_a"):
+        raise BadInput(f"method must be 'mad' or 'algorithm_a', not {method!r}")
+    probes = np.atleast_1d(np.asarray(probes, dtype=float)).ravel()
+    skipped = dict(skipped or {})
+    serials = tuple(s for s in values_at_probes if s not in skipped)
     if not serials:
         raise OutOfRange(f"no unit's valid range covers the probe readings ({basis})")
-    values = np.array([fits[s].to_value(probes) for s in serials], dtype=float).reshape(
-        len(serials), probes.size
-    )
+    values = np.array(
+        [np.asarray(values_at_probes[s], dtype=float) for s in serials], dtype=float
+    ).reshape(len(serials), probes.size)
     judged = len(serials) >= min_units
     center = np.full(probes.size, np.nan)
     scale = np.full(probes.size, np.nan)

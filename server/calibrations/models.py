@@ -13,7 +13,7 @@ import shared
 from server.db import Base, UTCDateTime, utcnow
 
 if TYPE_CHECKING:
-    from server.fleet.models import SensorType, Unit
+    from server.fleet.models import Unit
 
 
 class SessionKind(enum.StrEnum):
@@ -118,41 +118,3 @@ def stored_fit(record: CalibrationSession) -> shared.Fit:
     if current is None:
         raise LookupError(f"calibration {record.id} has no current fit")
     return shared.Fit.from_dict(current.result)
-
-
-class JobState(enum.StrEnum):
-    queued = "queued"
-    running = "running"
-    done = "done"
-    failed = "failed"
-
-
-class RefitJob(Base):
-    """A refit of every calibration of a sensor type, run in the background.
-
-    The new fits are computed first (``done`` of ``total`` sessions, for progress) and written in
-    one transaction at the end with the type's flags, so a job that fails or is interrupted
-    changes nothing. ``problems`` lists sessions that could not be refitted (their fit is kept).
-    """
-
-    __tablename__ = "refit_job"
-
-    id: Mapped[int] = mapped_column(primary_key=True)
-    sensor_type_id: Mapped[int] = mapped_column(ForeignKey("sensor_type.id"), index=True)
-    state: Mapped[JobState] = mapped_column(
-        Enum(JobState, native_enum=False, length=16, validate_strings=True),
-        default=JobState.queued,
-    )
-    reason: Mapped[str] = mapped_column(Text)
-    requested_by: Mapped[str | None] = mapped_column(String(64))
-    done: Mapped[int] = mapped_column(Integer, default=0)
-    total: Mapped[int] = mapped_column(Integer, default=0)
-    refitted: Mapped[int] = mapped_column(Integer, default=0)
-    changed_decisions: Mapped[int] = mapped_column(Integer, default=0)
-    problems: Mapped[list[dict[str, Any]]] = mapped_column(JSON, default=list)
-    message: Mapped[str | None] = mapped_column(Text)
-    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    started_at: Mapped[datetime | None] = mapped_column(UTCDateTime)
-    finished_at: Mapped[datetime | None] = mapped_column(UTCDateTime)
-
-    sensor_type: Mapped[SensorType] = relationship()

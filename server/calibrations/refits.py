@@ -15,59 +15,48 @@ A session that asked for a family keeps it while the type still lists it; otherw
 recommendation is kept, as for a new calibration. A session that cannot be fitted any more keeps
 its previous fit and is listed in the job's ``problems``.
 
-Jobs run one at a time on a single worker thread per app (``JobRunner``). A job left queued or
-running by a server that stopped is marked failed when the app starts again (nothing was written,
-see phase 2); start the refit again.
+The job is a database row (``server.jobs``): any server process may run it, one job per type at a
+time. A job whose process died is resumed from the start by another (nothing had been written,
+see phase 2); a job that fails is marked failed with the reason, and nothing changed.
 """
 
 from __future__ import annotations
 
-import logging
-import threading
 import time
-from collections.abc import Callable
-from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
 from sqlalchemy import select
-from sqlalchemy.orm import Session, selectinload, sessionmaker
+from sqlalchemy.orm import Session, selectinload
 
 import shared
 from server.audit import service as audit
-from server.calibrations.models import (
-    CalibrationSession,
-    FitRecord,
-    JobState,
-    RefitJob,
-)
+from server.calibrations.models import CalibrationSession, FitRecord
 from server.calibrations.schemas import JobRead, PointIn, RefitProblemRead
 from server.calibrations.service import Outcome, fit_points, type_b_of
-from server.db import utcnow
-from server.errors import DomainError, NotFound
+from server.errors import DomainError
 from server.fleet.models import SensorType, Unit
 from server.fleet.service import TypeChange
-
-log = logging.getLogger("sensorledger.jobs")
+from server.jobs import service as jobs
+from server.jobs.models import Job, JobKind
+from server.jobs.runner import JobContext
 
 PROGRESS_EVERY_S = 0.5  # how often the job row's progress is written while fitting
 
 
 def start_refit(
     session: Session, sensor_type: SensorType, reason: str, requested_by: str | None
-) -> RefitJob:
-    """A queued refit job for ``sensor_type``; the caller commits, then submits it to the
-    app's ``JobRunner``."""
-    job = RefitJob(
-        sensor_type=sensor_type,
-        state=JobState.queued,
-        reason=reason,
+) -> Job:
+    """A queued refit job for ``sensor_type``; the caller commits (a job runner of any server
+    process then claims it)."""
+    job = jobs.enqueue(
+        session,
+        JobKind.refit,
+        reason,
+        sensor_type_id=sensor_type.id,
         requested_by=requested_by,
-        total=len(_sessions_of(session, sensor_type.id)),
-        problems=[],
+        total=_count_sessions(session, sensor_type.id),
     )
-    session.add(job)
-    session.flush()
     audit.record(
         session,
         requested_by,
@@ -83,7 +72,7 @@ def start_refit(
 
 def follow_type_change(
     session: Session, sensor_type: SensorType, change: TypeChange, actor: str | None
-) -> RefitJob | None:
+) -> Job | None:
     """What an edit of a type sets off: a refit job when it changed fitting or acceptance (the
     caller commits, then submits it), else the type's flags recomputed when it changed the drift
     limit or interval; None when no job was started."""
@@ -96,29 +85,23 @@ def follow_type_change(
     return None
 
 
-def get_job(session: Session, job_id: int) -> RefitJob:
-    job = session.get(RefitJob, job_id)
-    if job is None:
-        raise NotFound(f"job {job_id} not found")
-    return job
-
-
-def jobs_of(session: Session, sensor_type: SensorType, limit: int = 10) -> list[RefitJob]:
-    """The type's newest jobs first."""
+def jobs_of(session: Session, sensor_type: SensorType, limit: int = 10) -> list[Job]:
+    """The type's newest refit jobs first."""
     return list(
         session.scalars(
-            select(RefitJob)
-            .where(RefitJob.sensor_type_id == sensor_type.id)
-            .order_by(RefitJob.id.desc())
+            select(Job)
+            .where(Job.sensor_type_id == sensor_type.id, Job.kind == JobKind.refit)
+            .order_by(Job.id.desc())
             .limit(limit)
         )
     )
 
 
-def job_read(job: RefitJob) -> JobRead:
+def job_read(job: Job) -> JobRead:
     return JobRead(
         id=job.id,
-        sensor_type=job.sensor_type.name,
+        kind=job.kind.value,
+        sensor_type=job.sensor_type.name if job.sensor_type is not None else None,
         state=job.state.value,
         reason=job.reason,
         requested_by=job.requested_by,
@@ -134,24 +117,21 @@ def job_read(job: RefitJob) -> JobRead:
     )
 
 
-def fail_interrupted(session: Session) -> int:
-    """Mark jobs a stopped server left queued or running as failed; how many."""
-    stale = list(
-        session.scalars(
-            select(RefitJob).where(RefitJob.state.in_([JobState.queued, JobState.running]))
-        )
-    )
-    for job in stale:
-        job.state, job.finished_at = JobState.failed, utcnow()
-        job.message = (
-            "interrupted: the server stopped before the job finished; nothing was changed. "
-            "Start the refit again."
-        )
-    session.flush()
-    return len(stale)
-
-
 # -- the work --------------------------------------------------------------------------------------
+
+
+def _count_sessions(session: Session, sensor_type_id: int) -> int:
+    from sqlalchemy import func
+
+    return (
+        session.scalar(
+            select(func.count())
+            .select_from(CalibrationSession)
+            .join(CalibrationSession.unit)
+            .where(Unit.sensor_type_id == sensor_type_id, CalibrationSession.voided_at.is_(None))
+        )
+        or 0
+    )
 
 
 def _sessions_of(session: Session, sensor_type_id: int) -> list[CalibrationSession]:
@@ -208,58 +188,47 @@ class _Refitted:
     outcome: Outcome
 
 
-def _progress(factory: sessionmaker[Session], job_id: int, **values: Any) -> None:
-    with factory() as s:
-        job = s.get(RefitJob, job_id)
-        if job is not None:
-            for name, value in values.items():
-                setattr(job, name, value)
-            s.commit()
-
-
-def _fit_all(
-    factory: sessionmaker[Session], job_id: int
-) -> tuple[list[_Refitted], list[dict[str, Any]]]:
+def _fit_all(ctx: JobContext) -> tuple[list[_Refitted], list[dict[str, Any]]]:
     """Phase 1: fit every session again; only progress is written."""
     results: list[_Refitted] = []
     problems: list[dict[str, Any]] = []
-    with factory() as s:
-        job = get_job(s, job_id)
+    with ctx.read_factory() as s:
+        job = jobs.get_job(s, ctx.job_id)
         sensor_type = job.sensor_type
+        assert sensor_type is not None
         records = _sessions_of(s, sensor_type.id)
         s.expunge_all()  # what the fits need is loaded: work detached, hold no transaction
         s.rollback()
-        _progress(factory, job_id, state=JobState.running, started_at=utcnow(), total=len(records))
-        last = time.monotonic()
-        for i, record in enumerate(records, start=1):
-            try:
-                results.append(_Refitted(record.id, refit_session(record, sensor_type)))
-            except (DomainError, shared.CalibrationError) as exc:
-                problems.append(
-                    {
-                        "session_id": record.id,
-                        "unit": record.unit.serial,
-                        "performed_at": record.performed_at.isoformat(),
-                        "reason": str(exc),
-                    }
-                )
-            if time.monotonic() - last >= PROGRESS_EVERY_S or i == len(records):
-                _progress(factory, job_id, done=i)
-                last = time.monotonic()
+    ctx.progress(total=len(records), done=0)
+    last = time.monotonic()
+    for i, record in enumerate(records, start=1):
+        ctx.stopping()
+        try:
+            results.append(_Refitted(record.id, refit_session(record, sensor_type)))
+        except (DomainError, shared.CalibrationError) as exc:
+            problems.append(
+                {
+                    "session_id": record.id,
+                    "unit": record.unit.serial,
+                    "performed_at": record.performed_at.isoformat(),
+                    "reason": str(exc),
+                }
+            )
+        if time.monotonic() - last >= PROGRESS_EVERY_S or i == len(records):
+            ctx.progress(done=i)
+            last = time.monotonic()
     return results, problems
 
 
-def _write_all(
-    factory: sessionmaker[Session],
-    job_id: int,
-    results: list[_Refitted],
-    problems: list[dict[str, Any]],
-) -> None:
-    """Phase 2: the new fits, the flags and the job's end, in one transaction."""
+def _write_all(ctx: JobContext, results: list[_Refitted], problems: list[dict[str, Any]]) -> None:
+    """Phase 2: the new fits, the flags and the job's end, in one transaction (fenced: only
+    while the job is still this process's)."""
     from server.flags.service import recompute_flags  # flags build on calibrations
 
-    with factory() as s:
-        job = get_job(s, job_id)
+    with ctx.factory() as s:
+        job = ctx.hold(s)
+        sensor_type = job.sensor_type
+        assert sensor_type is not None
         by_id = {
             r.id: r
             for r in s.scalars(
@@ -316,8 +285,8 @@ def _write_all(
                     passed=decision.passed,
                 )
         s.flush()
-        recompute_flags(s, job.sensor_type)
-        job.state, job.finished_at = JobState.done, utcnow()
+        recompute_flags(s, sensor_type)
+        jobs.finish(job)
         job.done, job.refitted, job.changed_decisions, job.problems = (
             job.total,
             refitted,
@@ -334,8 +303,8 @@ def _write_all(
             job.requested_by,
             "refit.finished",
             "sensor_type",
-            job.sensor_type.name,
-            f"refit of {job.sensor_type.name} finished (job {job.id}): {job.message}",
+            sensor_type.name,
+            f"refit of {sensor_type.name} finished (job {job.id}): {job.message}",
             job_id=job.id,
             refitted=refitted,
             changed_decisions=changed,
@@ -348,72 +317,8 @@ def _verdict(fit: FitRecord | None) -> str:
     return "no fit" if fit is None else f"{fit.family}, {'passed' if fit.passed else 'failed'}"
 
 
-def run_refit(factory: sessionmaker[Session], job_id: int) -> None:
-    """Run one job to its end (done or failed); never raises."""
-    try:
-        results, problems = _fit_all(factory, job_id)
-        _write_all(factory, job_id, results, problems)
-    except Exception as exc:  # a bug or a lost database: the job says so, nothing was written
-        log.exception("refit job %s failed", job_id)
-        _progress(
-            factory,
-            job_id,
-            state=JobState.failed,
-            finished_at=utcnow(),
-            message=f"failed, nothing was changed: {type(exc).__name__}: {exc}",
-        )
-
-
-class JobRunner:
-    """One worker thread per app: jobs (and periodic chores, see ``every``) run one after
-    another, in the order submitted, so they never write the database at the same time."""
-
-    def __init__(self, factory: sessionmaker[Session]) -> None:
-        self._factory = factory
-        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="sensorledger-job")
-        self._lock = threading.Lock()
-        self._pending: list[Future[None]] = []
-        self._stop = threading.Event()
-        self._tickers: list[threading.Thread] = []
-
-    def submit(self, job_id: int) -> Future[None]:
-        return self._queue(run_refit, self._factory, job_id)
-
-    def _queue(self, fn: Callable[..., None], *args: Any) -> Future[None]:
-        with self._lock:
-            future = self._pool.submit(fn, *args)
-            self._pending = [f for f in self._pending if not f.done()] + [future]
-        return future
-
-    def every(self, seconds: float, chore: Callable[[Session], object], name: str) -> None:
-        """Queue ``chore(session)`` (then commit) every ``seconds`` until shutdown; a chore that
-        fails is logged and tried again next time."""
-
-        def run() -> None:
-            try:
-                with self._factory() as session:
-                    chore(session)
-                    session.commit()
-            except Exception:
-                log.exception("%s failed", name)
-
-        def tick() -> None:
-            while not self._stop.wait(seconds):
-                self._queue(run)
-
-        ticker = threading.Thread(target=tick, name=f"sensorledger-{name}", daemon=True)
-        ticker.start()
-        self._tickers.append(ticker)
-
-    def wait(self, timeout: float | None = None) -> None:
-        """Wait for the jobs submitted so far (tests, shutdown)."""
-        with self._lock:
-            pending = list(self._pending)
-        for future in pending:
-            future.result(timeout)
-
-    def shutdown(self) -> None:
-        self._stop.set()
-        for ticker in self._tickers:
-            ticker.join()
-        self._pool.shutdown(wait=True, cancel_futures=False)
+def run_refit(ctx: JobContext) -> None:
+    """The refit job's handler: phase 1 then phase 2. An error propagates to the runner, which
+    marks the job failed (nothing was written)."""
+    results, problems = _fit_all(ctx)
+    _write_all(ctx, results, problems)

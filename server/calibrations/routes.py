@@ -5,10 +5,15 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Annotated
 
-from fastapi import APIRouter, Depends, File, Form, Query, UploadFile
+from fastapi import APIRouter, Depends, File, Form, Header, Query, Response, UploadFile
+from fastapi.responses import JSONResponse
 from pydantic import ValidationError
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
 
+from server import idempotency
 from server.accounts.deps import ApiTechnician, ApiViewer
+from server.accounts.models import User
 from server.calibrations import service
 from server.calibrations.csvfile import MAX_BYTES, parse_points_csv
 from server.calibrations.models import SessionKind, latest_session
@@ -39,19 +44,75 @@ BudgetReading = Annotated[
 ]
 
 
-@router.post("/units/{serial}/calibrations", status_code=201)
+IdempotencyKey = Annotated[
+    str | None,
+    Header(
+        alias=idempotency.HEADER,
+        description="any unique text (e.g. a UUID) per session; a retry of the same POST with "
+        "the same key stores nothing twice and answers what the first one answered",
+    ),
+]
+
+
+@router.post(
+    "/units/{serial}/calibrations",
+    status_code=201,
+    response_model=CalibrationRead,
+    responses={201: {"headers": {"Idempotency-Replayed": {"description": "true on a replay"}}}},
+)
 def create_calibration(
-    serial: str, data: CalibrationCreate, session: SessionDep, user: ApiTechnician
-) -> CalibrationRead:
-    """Store a calibration session, fit it server-side and judge it against the tolerance."""
-    unit = get_unit(session, serial)
+    serial: str,
+    data: CalibrationCreate,
+    session: SessionDep,
+    user: ApiTechnician,
+    idempotency_key: IdempotencyKey = None,
+) -> Response:
+    """Store a calibration session, fit it server-side and judge it against the tolerance.
+    The unit's own flags come back at once; the comparison with its siblings follows within
+    seconds (a background job)."""
+    return _store(serial, data, session, user, idempotency_key, data.model_dump_json().encode())
+
+
+def _store(
+    serial: str,
+    data: CalibrationCreate,
+    session: Session,
+    user: User,
+    key: str | None,
+    request_body: bytes,
+) -> Response:
+    key = idempotency.check_key(key)
+    route = f"POST /api/v1/units/{serial}/calibrations"
+    digest = idempotency.digest(request_body)
+    if key is not None:
+        earlier = idempotency.find(session, user.name, key, route, digest)
+        if earlier is not None:
+            return JSONResponse(
+                earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
+            )
+    unit = get_unit(session, serial, lock=True)
     record = service.run_calibration(session, unit, data, recorded_by=user.name)
     recompute_flags(session, unit.sensor_type, units=[unit])
-    session.commit()
-    return service.calibration_read(record).model_copy(update={"flags": open_flags(unit)})
+    answer = service.calibration_read(record).model_copy(update={"flags": open_flags(unit)})
+    body = answer.model_dump(mode="json")
+    if key is not None:
+        idempotency.keep(session, user.name, key, route, digest, 201, body)
+    try:
+        session.commit()
+    except IntegrityError:
+        if key is None:
+            raise
+        session.rollback()  # the same key, committed by a request that ran at the same time
+        earlier = idempotency.find(session, user.name, key, route, digest)
+        if earlier is None:
+            raise
+        return JSONResponse(
+            earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
+        )
+    return JSONResponse(body, 201)
 
 
-@router.post("/units/{serial}/calibrations/csv", status_code=201)
+@router.post("/units/{serial}/calibrations/csv", status_code=201, response_model=CalibrationRead)
 def create_calibration_from_csv(
     serial: str,
     session: SessionDep,
@@ -77,9 +138,11 @@ def create_calibration_from_csv(
         float | None, Form(description="one more standard uncertainty, value units")
     ] = None,
     extra_label: Annotated[str | None, Form(description="what extra_u is")] = None,
-) -> CalibrationRead:
+    idempotency_key: IdempotencyKey = None,
+) -> Response:
     """The same as posting JSON, with the points in an uploaded CSV file."""
-    points = parse_points_csv(file.file.read(MAX_BYTES + 1))
+    raw = file.file.read(MAX_BYTES + 1)
+    points = parse_points_csv(raw)
     try:
         data = CalibrationCreate(
             performed_at=performed_at,
@@ -99,7 +162,9 @@ def create_calibration_from_csv(
         first = exc.errors()[0]
         field = ".".join(str(p) for p in first["loc"])
         raise Invalid(f"{field}: {first['msg']}", field=field) from exc
-    return create_calibration(serial, data, session, user)
+    return _store(
+        serial, data, session, user, idempotency_key, b"csv\n" + data.model_dump_json().encode()
+    )
 
 
 @router.get("/units/{serial}/calibrations")
@@ -144,7 +209,7 @@ def void_calibration(
 ) -> CalibrationRead:
     """Void a mistaken calibration with a reason: it is kept (and shown struck out) but no longer
     counts; the unit's flags, due date and current calibration follow."""
-    unit = get_unit(session, serial)
+    unit = get_unit(session, serial, lock=True)
     record = service.get_session_of(unit, session_id)
     service.void_session(session, record, data.reason, user.name)
     recompute_flags(session, unit.sensor_type, units=[unit])

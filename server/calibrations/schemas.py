@@ -291,13 +291,14 @@ class RefitProblemRead(BaseModel):
 
 
 class JobRead(BaseModel):
-    """A background refit of a sensor type: ``done`` of ``total`` sessions fitted so far."""
+    """A background job: a refit of a sensor type (``done`` of ``total`` sessions fitted so
+    far), a fleet comparison of a type, or an overdue sweep."""
 
     id: int
-    kind: Literal["refit"] = "refit"
-    sensor_type: str
+    kind: Literal["refit", "fleet", "overdue_sweep"] = "refit"
+    sensor_type: str | None
     state: str = Field(description="queued, running, done or failed")
-    reason: str = Field(description="why the type is refitted")
+    reason: str = Field(description="why the job runs")
     requested_by: str | None
     done: int
     total: int

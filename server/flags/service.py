@@ -10,8 +10,8 @@ and its installation events:
 - ``out_of_tolerance_in_service``: ``shared.drift.as_found``, the previous fit applied to the
   newest session's points with the type's tolerance, has a point out (action); the evidence names
   the installations that overlapped the time between the two calibrations.
-- ``fleet_outlier``: ``shared.fleet.fleet_outliers`` over the current fits of the type: the
-  engine's action signal (|z| >= 3) is ``action``, its warning signal (2 < |z| < 3) ``warning``.
+- ``fleet_outlier``: the units of the type compared with each other (``server.flags.fleet``, a
+  background job after a unit's change): |z| >= 3 is ``action``, 2 < |z| < 3 ``warning``.
 - ``overdue``: the due date (``server.fleet.service.unit_due``: the interval adjusted by the
   drift history, as on the fleet page; stored on the unit here) has passed: ``warning`` for the
   first 30 days, ``action`` after. The evidence carries the due date's basis.
@@ -32,21 +32,24 @@ from datetime import date, datetime
 from typing import Any
 
 import numpy as np
-from sqlalchemy import Select, func, select
-from sqlalchemy.orm import Session, object_session, selectinload
+from sqlalchemy import Select, func, or_, select
+from sqlalchemy.orm import Session, object_session, selectinload, sessionmaker
 
 import shared
 from server.audit import service as audit
 from server.calibrations.models import CalibrationSession, FitRecord, stored_fit, valid_sessions
 from server.db import json_safe, utcnow
 from server.errors import Conflict, Invalid, NotFound
+from server.flags.fleet import keep_curve, queue, recompute_fleet
 from server.flags.models import EventKind, Flag, FlagKind, InstallationEvent, Severity
 from server.flags.schemas import EventCreate, EventRead, FlagRead
 from server.fleet.models import SensorType, Unit, UnitStatus
 from server.fleet.service import store_due
+from server.jobs import service as jobs
+from server.jobs.models import JobKind
+from server.jobs.runner import JobContext
 from server.pagination import PageParams, paged
 from shared.drift import as_found, compare
-from shared.fleet import fleet_outliers
 
 PLOT_POINTS = 41  # readings kept in a drift flag's evidence for its plot
 OVERDUE_ACTION_DAYS = 30  # overdue longer than this is an action, before it a warning
@@ -427,70 +430,18 @@ def _overdue(unit: Unit, last: CalibrationSession, st: SensorType, today: date) 
     )
 
 
-def _outliers(current: dict[str, tuple[Unit, CalibrationSession]], st: SensorType) -> list[Found]:
-    if len(current) < 2:
-        return []
-    fits = {serial: stored_fit(record) for serial, (_, record) in current.items()}
-    try:
-        result = fleet_outliers(fits)
-    except shared.CalibrationError:
-        return []
-    out = []
-    for serial, score in result.units.items():
-        if score.level not in ("action", "warning"):
-            continue
-        unit, record = current[serial]
-        row = result.serials.index(serial)
-        j = int(np.argmin(np.abs(result.probe_readings - score.at_reading)))
-        centre = float(result.center[j])
-        out.append(
-            Found(
-                unit=unit,
-                kind=FlagKind.fleet_outlier,
-                severity=Severity.action if score.level == "action" else Severity.warning,
-                key=f"fleet_outlier:{unit.id}:{record.id}",
-                message=(
-                    f"reads unlike its {len(result.serials) - 1} siblings: robust z "
-                    f"{score.z_at_max:+.2f} at {_g(score.at_reading, 4)} {st.reading_unit} "
-                    f"({_g(score.value_at_max, 4)} {st.value_unit} against the median "
-                    f"{_g(centre, 4)} {st.value_unit})"
-                ),
-                evidence=json_safe(
-                    {
-                        "session_id": record.id,
-                        "z": score.z_at_max,
-                        "at_reading": score.at_reading,
-                        "value": score.value_at_max,
-                        "center": centre,
-                        "scale": float(result.scale[j]),
-                        "units_compared": len(result.serials),
-                        "probe_readings": result.probe_readings,
-                        # this unit at each probe (for the plot): its value, the fleet's robust
-                        # centre and scale there, and its robust z
-                        "probe_values": result.values[row],
-                        "probe_center": result.center,
-                        "probe_scale": result.scale,
-                        "probe_z": result.z[row],
-                        "rule": result.rule,
-                        "value_unit": st.value_unit,
-                        "reading_unit": st.reading_unit,
-                    }
-                ),
-            )
-        )
-    return out
-
-
-def _units_of(session: Session, sensor_type: SensorType) -> list[Unit]:
+def _units_of(
+    session: Session, sensor_type: SensorType, only: set[int] | None = None
+) -> list[Unit]:
+    query = select(Unit).where(Unit.sensor_type_id == sensor_type.id)
+    if only is not None:
+        query = query.where(Unit.id.in_(only))
     return list(
         session.scalars(
-            select(Unit)
-            .where(Unit.sensor_type_id == sensor_type.id)
-            .options(
+            query.options(
                 selectinload(Unit.sessions).selectinload(CalibrationSession.fits),
                 selectinload(Unit.sessions).selectinload(CalibrationSession.points),
-            )
-            .order_by(Unit.serial)
+            ).order_by(Unit.serial)
         )
     )
 
@@ -501,10 +452,15 @@ def find_conditions(
     today: date | None = None,
     only: set[int] | None = None,
 ) -> list[Found]:
-    """Every condition that holds now for the units of ``sensor_type``; with ``only`` (unit ids)
-    the per-unit conditions of those units alone, and the fleet outliers of the whole type."""
+    """Every condition of its own that holds now for each unit of ``sensor_type`` (all but the
+    fleet outliers, see ``server.flags.fleet``), or with ``only`` (unit ids) for those units;
+    each unit's due date and what the fleet comparison needs are stored on it on the way."""
     today = today or utcnow().date()
-    units = [u for u in _units_of(session, sensor_type) if u.status is not UnitStatus.retired]
+    chosen = _units_of(session, sensor_type, only)
+    for unit in chosen:
+        if unit.status is UnitStatus.retired:
+            keep_curve(unit, None, sensor_type)
+    units = [u for u in chosen if u.status is not UnitStatus.retired]
     events: dict[int, list[InstallationEvent]] = {u.id: [] for u in units}
     if units:
         for e in session.scalars(
@@ -514,16 +470,14 @@ def find_conditions(
         ):
             events[e.unit_id].append(e)
     found: list[Found] = []
-    current: dict[str, tuple[Unit, CalibrationSession]] = {}
     for unit in units:
         valid = valid_sessions(unit.sessions)
         if not valid:
             unit.due_on, unit.due_basis = None, None
+            keep_curve(unit, None, sensor_type)
             continue
         last = valid[-1]
-        current[unit.serial] = (unit, last)
-        if only is not None and unit.id not in only:
-            continue
+        keep_curve(unit, last, sensor_type)
         for item in (
             _failed(unit, last, sensor_type),
             _overdue(unit, last, sensor_type, today),
@@ -538,7 +492,6 @@ def find_conditions(
             ):
                 if item is not None:
                     found.append(item)
-    found.extend(_outliers(current, sensor_type))
     return found
 
 
@@ -552,19 +505,30 @@ def recompute_flags(
     """Raise, refresh and close the flags of the units of ``sensor_type``; the open ones.
 
     With ``units`` (a calibration, void, event or status change of those units) only their own
-    flags and due dates are recomputed, and the fleet outliers of the whole type (a unit's
-    drift, as-found and due date depend on its own sessions alone); without, every flag of the
-    type (an edit or refit of the type, the demo load, the overdue sweep)."""
+    flags and due dates are recomputed (a unit's drift, as-found and due date depend on its own
+    sessions alone), and the fleet comparison of the type is queued as a background job (call
+    this last before the commit); a retired unit's flags all close. Without ``units``, every
+    flag of the type including the fleet comparison, at once (an edit or refit of the type, the
+    demo load)."""
     now = utcnow()
     only = None if units is None else {u.id for u in units}
+    retired = {u.id for u in units or [] if u.status is UnitStatus.retired}
     found = {f.key: f for f in find_conditions(session, sensor_type, today, only)}
+    query = select(Flag).where(Flag.open.is_(True))
+    if only is None:
+        query = query.join(Flag.unit).where(Unit.sensor_type_id == sensor_type.id)
+    else:
+        query = query.where(Flag.unit_id.in_(only))
     existing = {
         f.key: f
-        for f in session.scalars(
-            select(Flag).join(Flag.unit).where(Unit.sensor_type_id == sensor_type.id)
-        )
-        if only is None or f.unit_id in only or f.kind is FlagKind.fleet_outlier
+        for f in session.scalars(query)
+        if f.kind is not FlagKind.fleet_outlier or f.unit_id in retired
     }
+    # closed flags whose condition came back are opened again (their row and note are kept)
+    returning = [key for key in found if key not in existing]
+    if returning:
+        for f in session.scalars(select(Flag).where(Flag.key.in_(returning))):
+            existing[f.key] = f
     for key, gone in existing.items():
         if key not in found and gone.open:
             gone.open, gone.closed_at = False, now
@@ -578,6 +542,10 @@ def recompute_flags(
         flag.open, flag.closed_at = True, None
         kept.append(flag)
     session.flush()
+    if units is None:
+        kept += recompute_fleet(session, sensor_type)
+    else:
+        queue(session, sensor_type)
     return kept
 
 
@@ -628,16 +596,32 @@ def sweep_overdue(session: Session, *, today: date | None = None) -> int:
     return sum(len(u) for u in stale.values())
 
 
+def run_sweep_job(ctx: JobContext) -> None:
+    """The overdue sweep's handler (queued hourly by every server process, coalesced)."""
+    with ctx.factory() as s:
+        job = ctx.hold(s)
+        n = sweep_overdue(s)
+        jobs.finish(job, f"{n} unit{'s' if n != 1 else ''} newly overdue")
+        s.commit()
+
+
+def queue_sweep(factory: sessionmaker[Session]) -> None:
+    """Queue an overdue sweep unless one is queued already."""
+    with factory() as s:
+        jobs.enqueue_once(s, JobKind.overdue_sweep, "overdue_sweep", "hourly overdue sweep")
+        s.commit()
+
+
 def bring_due_dates_up(session: Session) -> int:
-    """Recompute the types with a calibrated, unretired unit whose due date was never stored
-    (a database upgraded from before due dates were kept); how many types. Cheap when there
-    are none: one query."""
+    """Recompute the types with a calibrated, unretired unit whose due date or fleet curve was
+    never stored (a database upgraded from before revision 0004 or 0007); how many types.
+    Cheap when there are none: one query."""
     stale = session.scalars(
         select(Unit.sensor_type_id)
         .join(Unit.sessions)
         .join(CalibrationSession.fits)
         .where(
-            Unit.due_on.is_(None),
+            or_(Unit.due_on.is_(None), Unit.fleet_fit_id.is_(None)),
             Unit.status != UnitStatus.retired,
             CalibrationSession.voided_at.is_(None),
             FitRecord.is_current.is_(True),

@@ -53,6 +53,10 @@ class SensorType(Base):
     )
     reading_resolution: Mapped[float | None] = mapped_column(Float)  # one step, reading units
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    # the fleet comparison (server.flags.fleet): the probe readings it last used, and when it
+    # last finished; a queued or running fleet job means it is catching up
+    fleet_probes: Mapped[list[float] | None] = mapped_column(JSON)
+    fleet_checked_at: Mapped[datetime | None] = mapped_column(UTCDateTime)
 
     units: Mapped[list[Unit]] = relationship(back_populates="sensor_type")
 
@@ -75,6 +79,15 @@ class Unit(Base):
     # recomputation so the fleet list need not compare calibrations; None until then
     due_on: Mapped[date | None]
     due_basis: Mapped[str | None] = mapped_column(Text)
+    # what the fleet comparison needs of the current calibration, kept with each change of it
+    # (server.flags.fleet.keep_curve) so that comparing 10,000 units reloads no fit: the session
+    # and fit, the fit's valid range, and {"probes": [...], "values": [...]} (the curve at the
+    # type's probe readings) when the range covers them
+    fleet_session_id: Mapped[int | None] = mapped_column(Integer)
+    fleet_fit_id: Mapped[int | None] = mapped_column(Integer)
+    fleet_lo: Mapped[float | None] = mapped_column(Float)
+    fleet_hi: Mapped[float | None] = mapped_column(Float)
+    fleet_values: Mapped[dict[str, Any] | None] = mapped_column(JSON)
 
     sensor_type: Mapped[SensorType] = relationship(back_populates="units")
     sessions: Mapped[list[CalibrationSession]] = relationship(

@@ -24,6 +24,7 @@ from server.fleet.schemas import (
     UnitRead,
     UnitUpdate,
 )
+from server.jobs import service as jobs
 from server.pagination import Page, PageParams, page_params
 
 router = APIRouter(prefix="/api/v1", tags=["fleet"])
@@ -103,7 +104,7 @@ def refit_sensor_type(name: str, request: Request, session: SessionDep, user: Ap
 @router.get("/jobs/{job_id}")
 def get_job(job_id: int, session: SessionDep, user: ApiViewer) -> JobRead:
     """A background job's state and progress (``done`` of ``total``)."""
-    return refits.job_read(refits.get_job(session, job_id))
+    return refits.job_read(jobs.get_job(session, job_id))
 
 
 @router.post("/units", status_code=201)

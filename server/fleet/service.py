@@ -237,8 +237,11 @@ def _with_history() -> tuple[Any, ...]:
     )
 
 
-def get_unit(session: Session, serial: str) -> Unit:
-    unit = session.scalar(select(Unit).where(Unit.serial == serial).options(*_with_history()))
+def get_unit(session: Session, serial: str, *, lock: bool = False) -> Unit:
+    """The unit with its sessions; ``lock``: row-locked until the transaction ends (PostgreSQL;
+    a SQLite writer holds the whole database), so two changes of one unit take turns."""
+    query = select(Unit).where(Unit.serial == serial).options(*_with_history())
+    unit = session.scalar(query.with_for_update(of=Unit) if lock else query)
     if unit is None:
         raise NotFound(f"unit {serial!r} not found")
     return unit

@@ -28,6 +28,7 @@ from server.fleet import charts, service
 from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeCreate, SensorTypeUpdate
 from server.htmx import is_partial, render
+from server.jobs import service as jobs
 from shared.fleet import MIN_UNITS
 
 router = APIRouter(include_in_schema=False)
@@ -449,7 +450,7 @@ def job_status(
 ) -> HTMLResponse:
     """One job's progress: the ``job`` block for htmx polling, the type page otherwise."""
     st = service.get_sensor_type(session, name)
-    job = refits.get_job(session, job_id)
+    job = jobs.get_job(session, job_id)
     if job.sensor_type_id != st.id:
         raise Invalid(f"job {job_id} is not a refit of {st.name}", field="job")
     return render(

@@ -17,9 +17,11 @@ import pytest
 import sqlalchemy as sa
 
 from server.app import create_app
-from server.calibrations.models import FitRecord, JobState, RefitJob
+from server.calibrations.models import FitRecord
 from server.config import Settings
 from server.fleet.models import SensorType, Unit
+from server.jobs.models import Job, JobKind, JobState
+from server.jobs.service import MAX_ATTEMPTS
 from tests.server.lines import calibrate, line_points, pot_type
 
 TYPE = "Pot 270"
@@ -233,27 +235,65 @@ def test_a_calibration_answers_with_the_units_open_flags(client, admin, technici
     assert quiet["flags"] == []
 
 
-def test_a_restart_fails_interrupted_jobs_and_stores_missing_due_dates(client, app, db_url, shop):
+def _left_running(app: Any, attempts: int) -> int:
+    """A refit job as a process that died mid-job leaves it: running, its heartbeat old."""
     with app.state.sessionmaker() as s:
         sensor_type = s.scalar(sa.select(SensorType).where(SensorType.name == TYPE))
         assert sensor_type is not None
-        s.add(RefitJob(sensor_type=sensor_type, state=JobState.running, reason="x", problems=[]))
+        job = Job(
+            kind=JobKind.refit,
+            sensor_type=sensor_type,
+            state=JobState.running,
+            reason="x",
+            problems=[],
+            claimed_by="gone:1",
+            claim_token="0" * 32,
+            heartbeat_at=NOW - timedelta(minutes=10),
+            attempts=attempts,
+        )
+        s.add(job)
+        s.commit()
+        return job.id
+
+
+def test_a_job_whose_process_died_is_resumed_and_due_dates_are_stored(db_url, shop, client, app):
+    job_id = _left_running(app, attempts=1)
+    with app.state.sessionmaker() as s:
         stored = dict(s.execute(sa.select(Unit.serial, Unit.due_on)).all())
         s.execute(sa.update(Unit).values(due_on=None, due_basis=None))
         s.commit()
     assert stored["P-1"] is not None and stored["P-3"] is None
 
-    again = create_app(Settings(database_url=db_url))  # what a restarted server does
+    again = create_app(Settings(database_url=db_url, job_stale_after_s=2.0, job_poll_s=0.1))
+    again.state.jobs.start()  # what a restarted server (or another one) does
     try:
+        again.state.jobs.wait(TIMEOUT_S)
         with again.state.sessionmaker() as s:
-            job = s.scalar(sa.select(RefitJob))
-            assert job is not None and job.state is JobState.failed
-            assert job.message is not None and "interrupted" in job.message
+            job = s.get(Job, job_id)
+            assert job is not None and job.state is JobState.done, job.message if job else None
+            assert job.attempts == 2 and job.refitted == 3
             now = dict(s.execute(sa.select(Unit.serial, Unit.due_on)).all())
         assert now == stored
     finally:
         again.state.jobs.shutdown()
         again.state.engine.dispose()
+
+
+def test_a_job_whose_process_died_too_often_fails_and_changes_nothing(db_url, shop, client, app):
+    before = {f.id: f.is_current for f in fits_of_unit(app, "P-1")}
+    job_id = _left_running(app, attempts=MAX_ATTEMPTS)
+    again = create_app(Settings(database_url=db_url, job_stale_after_s=2.0, job_poll_s=0.1))
+    again.state.jobs.start()
+    try:
+        again.state.jobs.wait(TIMEOUT_S)
+        with again.state.sessionmaker() as s:
+            job = s.get(Job, job_id)
+            assert job is not None and job.state is JobState.failed
+            assert job.message is not None and "nothing was changed" in job.message
+    finally:
+        again.state.jobs.shutdown()
+        again.state.engine.dispose()
+    assert {f.id: f.is_current for f in fits_of_unit(app, "P-1")} == before
 
 
 def test_the_unit_flag_filter_names_every_flag_kind():

@@ -84,7 +84,7 @@ def demo(
         with make_sessionmaker(engine)() as session:
             load_demo(session)
             session.commit()
-        with make_sessionmaker(engine)() as session:
+        with make_sessionmaker(engine, read_only=True)() as session:  # held open: reads only
             yield Demo(url, session)
         engine.dispose()
 

@@ -1,0 +1,1 @@
+"""Background jobs kept as database rows: refits, fleet comparisons, overdue sweeps."""
