@@ -8,9 +8,11 @@ from urllib.parse import quote
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, Response
+from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 log = logging.getLogger("sensorledger")
+BUSY_RETRY_AFTER_S = 2
 
 
 class DomainError(Exception):
@@ -90,6 +92,24 @@ def install(app: FastAPI) -> None:
         return render(
             request, "errors/page.html", block="problem", status_code=422, message=message
         )
+
+    @app.exception_handler(OperationalError)
+    async def on_busy(request: Request, exc: OperationalError) -> Response:
+        """SQLite's write lock not had within the busy timeout (the one database error a
+        request may meet under load and that a retry fixes): 503 with Retry-After, nothing
+        stored. Any other database error is a bug: re-raised, a 500 with a log line."""
+        if "database is locked" not in str(exc.orig):
+            raise exc
+        log.warning("write lock not had in time: %s %s", request.method, request.url.path)
+        message = "the database is busy with other writers; nothing was stored, try again"
+        headers = {"Retry-After": str(BUSY_RETRY_AFTER_S)}
+        if _is_api(request):
+            return JSONResponse({"detail": message, "field": None}, 503, headers=headers)
+        response = render(
+            request, "errors/page.html", block="problem", status_code=503, message=message
+        )
+        response.headers.update(headers)
+        return response
 
     @app.exception_handler(StarletteHTTPException)
     async def on_http(request: Request, exc: StarletteHTTPException) -> Response:

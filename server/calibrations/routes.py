@@ -84,31 +84,37 @@ def _store(
     key = idempotency.check_key(key)
     route = f"POST /api/v1/units/{serial}/calibrations"
     digest = idempotency.digest(request_body)
-    if key is not None:
+
+    def replay() -> Response | None:
+        assert key is not None
         earlier = idempotency.find(session, user.name, key, route, digest)
-        if earlier is not None:
-            return JSONResponse(
-                earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
-            )
+        if earlier is None:
+            return None
+        return JSONResponse(
+            earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
+        )
+
+    if key is not None and (found := replay()) is not None:
+        return found
     unit = get_unit(session, serial, lock=True)
+    # a retry that waited for the unit behind its first attempt finds that answer now
+    if key is not None and (found := replay()) is not None:
+        return found
     record = service.run_calibration(session, unit, data, recorded_by=user.name)
     recompute_flags(session, unit.sensor_type, units=[unit])
     answer = service.calibration_read(record).model_copy(update={"flags": open_flags(unit)})
     body = answer.model_dump(mode="json")
-    if key is not None:
-        idempotency.keep(session, user.name, key, route, digest, 201, body)
     try:
+        if key is not None:
+            idempotency.keep(session, user.name, key, route, digest, 201, body)
         session.commit()
     except IntegrityError:
         if key is None:
             raise
-        session.rollback()  # the same key, committed by a request that ran at the same time
-        earlier = idempotency.find(session, user.name, key, route, digest)
-        if earlier is None:
+        session.rollback()  # the same key, stored by a request that ran at the same time
+        if (found := replay()) is None:
             raise
-        return JSONResponse(
-            earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
-        )
+        return found
     return JSONResponse(body, 201)
 
 
