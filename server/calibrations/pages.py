@@ -24,6 +24,7 @@ from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
 from server.db import SessionDep
 from server.errors import Conflict, Invalid
 from server.exports.service import default_step, header_problem
+from server.flags import fleet
 from server.flags.charts import drift_history_figure
 from server.flags.panels import unit_panels
 from server.flags.service import recompute_flags
@@ -228,6 +229,11 @@ def calibration_from_form(form: CalibrationForm) -> CalibrationCreate:
         ) from None
 
 
+def _catching_up(unit: Unit) -> bool:
+    session = object_session(unit)
+    return session is not None and fleet.catching_up(session, unit.sensor_type)
+
+
 def unit_context(
     unit: Unit,
     user: User,
@@ -254,6 +260,7 @@ def unit_context(
         "kinds": list(SessionKind),
         "unit_url": unit_url(unit.serial),
         "can_calibrate": ROLE_RANK[user.role] >= ROLE_RANK[Role.technician],
+        "fleet_catching_up": _catching_up(unit),
         "fit": None,
         "decision": None,
         "constants": [],

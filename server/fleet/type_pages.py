@@ -19,6 +19,7 @@ import shared
 from server.accounts.deps import PageAdmin, PageViewer
 from server.accounts.models import ROLE_RANK, Role, User
 from server.calibrations import refits
+from server.flags import fleet as fleet_comparison
 from server.calibrations.charts import Axes
 from server.calibrations.models import CalibrationSession, latest_session, stored_fit
 from server.db import SessionDep
@@ -159,6 +160,7 @@ def _context(
         "units": units,
         "jobs": refits.jobs_of(session, st),
         "just_started": job_id,
+        "fleet_catching_up": fleet_comparison.catching_up(session, st),
         "can_edit": ROLE_RANK[user.role] >= ROLE_RANK[Role.admin],
         "type_url": type_url(st.name),
     }

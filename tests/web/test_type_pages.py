@@ -263,3 +263,25 @@ def test_a_finished_job_block_brings_the_nav_count_up_to_date(admin, app) -> Non
     shown = re.search(r'<span id="nav-count" class="nav-count"[^>]*>(\d+)</span>', page)
     assert shown and found.group(1) == shown.group(1)
     assert int(found.group(1)) >= 1  # the tighter tolerance failed some calibrations
+
+
+def test_unit_and_type_pages_say_when_the_fleet_comparison_is_catching_up(app, viewer):
+    from server.fleet.models import Unit
+    from server.jobs import service as jobs
+    from server.jobs.models import JobKind
+    from tests.web.seed import Fleet
+
+    with app.state.sessionmaker() as s:
+        unit = s.scalar(sa.select(Unit).where(Unit.serial == Fleet.calibrated))
+        assert unit is not None
+        st = unit.sensor_type
+        name = st.name
+    unit_url = f"/units/{Fleet.calibrated}"
+    assert "catching up" not in viewer.get(unit_url).text
+    assert "catching up" not in viewer.get(url(name)).text
+    app.state.jobs.shutdown()  # keep the comparison queued while the pages are read
+    with app.state.sessionmaker() as s:
+        jobs.enqueue_once(s, JobKind.fleet, jobs.fleet_key(st.id), "test", sensor_type_id=st.id)
+        s.commit()
+    assert "is catching up" in viewer.get(unit_url).text
+    assert "is catching up" in viewer.get(url(name)).text
