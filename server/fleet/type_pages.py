@@ -19,11 +19,11 @@ import shared
 from server.accounts.deps import PageAdmin, PageViewer
 from server.accounts.models import ROLE_RANK, Role, User
 from server.calibrations import refits
-from server.flags import fleet as fleet_comparison
 from server.calibrations.charts import Axes
 from server.calibrations.models import CalibrationSession, latest_session, stored_fit
 from server.db import SessionDep
 from server.errors import Conflict, Invalid
+from server.flags import fleet as fleet_comparison
 from server.flags.models import Flag, FlagKind
 from server.fleet import charts, service
 from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
