@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import errno
+import os
 import socket
 import sys
 from typing import TYPE_CHECKING
@@ -97,6 +98,9 @@ def _sign_in_lines(session: Session, args: argparse.Namespace, demo_users: bool)
     ]
 
 
+MAX_WORKERS = 32
+
+
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
     from sqlalchemy import select
@@ -147,10 +151,37 @@ def _serve(args: argparse.Namespace) -> int:
         f"{token_for}{db_hint(args)})",
         "Press Ctrl+C to stop.",
     ]
+    if args.workers > 1:
+        lines.insert(
+            2, f"Serving with {args.workers} worker processes (jobs shared through the database)."
+        )
     print("\n".join(lines), flush=True)
-    uvicorn.run(app, host=args.host, port=args.port, log_level="warning")
+    if args.workers == 1:
+        uvicorn.run(app, host=args.host, port=args.port, log_level="warning")
+    else:
+        # each worker process builds its own app from the environment (server.app:create_app)
+        app.state.engine.dispose()
+        os.environ["SENSORLEDGER_DATABASE_URL"] = url
+        uvicorn.run(
+            "server.app:create_app",
+            factory=True,
+            workers=args.workers,
+            host=args.host,
+            port=args.port,
+            log_level="warning",
+        )
     print("sensorledger stopped.")
     return EXIT_OK
+
+
+def _workers(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
+    if not 1 <= n <= MAX_WORKERS:
+        raise argparse.ArgumentTypeError(f"between 1 and {MAX_WORKERS}, not {n}")
+    return n
 
 
 def _configure_serve(parser: argparse.ArgumentParser) -> None:
@@ -167,3 +198,11 @@ def _configure_serve(parser: argparse.ArgumentParser) -> None:
         "0.0.0.0 for every network)",
     )
     parser.add_argument("--port", type=_port, default=8000, help="port (default 8000)")
+    parser.add_argument(
+        "--workers",
+        type=_workers,
+        default=1,
+        help="server processes sharing the port and the database (default 1; background jobs "
+        "are shared through the database, so any number works; on PostgreSQL several "
+        "machines may also serve one database)",
+    )
