@@ -67,9 +67,10 @@ def test_two_workers_serve_one_database_and_share_the_job_queue(tmp_path):
     port = _free_port()
     base = f"http://127.0.0.1:{port}"
     log = (tmp_path / "serve.log").open("w")
+    command = [sys.executable, "-m", "server.cli", "serve", "--db", str(db), "--port", str(port)]
+    command += ["--workers", "2"]
     proc = subprocess.Popen(
-        [sys.executable, "-m", "server.cli", "serve", "--db", str(db), "--port", str(port)]
-        + ["--workers", "2"],
+        command,
         cwd=ROOT,
         stdout=log,
         stderr=subprocess.STDOUT,
