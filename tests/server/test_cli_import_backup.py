@@ -23,11 +23,11 @@ import pytest
 import sqlalchemy as sa
 from fastapi.testclient import TestClient
 
-from server import cli
 from server.accounts import service as accounts
 from server.accounts.models import Role
 from server.app import create_app
 from server.calibrations.schemas import CalibrationRead
+from server.cli import database as cli_database
 from server.config import Settings
 from server.db import make_engine
 from tests.server.test_cli import run
@@ -333,7 +333,7 @@ def test_backup_copies_the_demo_database_and_reads_it_back(capsys, demo_db, tmp_
 
 
 def test_backup_reports_progress_of_a_large_file(capsys, demo_db, tmp_path, monkeypatch) -> None:
-    monkeypatch.setattr(cli, "STEP_PAGES", 8)  # "large" for this test: more than 8 pages
+    monkeypatch.setattr(cli_database, "STEP_PAGES", 8)  # "large" for this test: more than 8 pages
     conn = sqlite3.connect(demo_db)
     pages = conn.execute("PRAGMA page_count").fetchone()[0]
     conn.close()
@@ -419,7 +419,7 @@ def test_backup_finds_the_default_database_and_the_environments(capsys, tmp_path
 def test_backup_is_one_snapshot_while_others_write(capsys, demo_db, tmp_path, monkeypatch):
     """A writer that commits between the copy's steps neither restarts the copy nor shows up in
     it; a writer holding an open transaction does not block it (WAL)."""
-    monkeypatch.setattr(cli, "STEP_PAGES", 4)
+    monkeypatch.setattr(cli_database, "STEP_PAGES", 4)
     writer = sqlite3.connect(demo_db, isolation_level=None)
     before = table_counts(demo_db)["user_account"]
     steps: list[int] = []
@@ -432,7 +432,7 @@ def test_backup_is_one_snapshot_while_others_write(capsys, demo_db, tmp_path, mo
         )
 
     snapshot = tmp_path / "snapshot.db"
-    pages, _ = cli.copy_sqlite(demo_db, snapshot, on_step=write_between_steps)
+    pages, _ = cli_database.copy_sqlite(demo_db, snapshot, on_step=write_between_steps)
     assert len(steps) >= 2 and steps == sorted(set(steps)) and steps[-1] == pages  # no restart
     assert table_counts(snapshot)["user_account"] == before
     assert table_counts(demo_db)["user_account"] == before + len(steps)
