@@ -31,7 +31,18 @@ def record(
     **detail: Any,
 ) -> AuditEntry:
     """Add one entry; flushed with the change it describes."""
-    entry = AuditEntry(
+    entry = entry_of(actor, action, subject_kind, subject, summary, **detail)
+    session.add(entry)
+    session.flush()
+    return entry
+
+
+def entry_of(
+    actor: str | None, action: str, subject_kind: str, subject: str, summary: str, **detail: Any
+) -> AuditEntry:
+    """An entry not yet added: for a bulk import that adds many with its rows (``record`` adds
+    and flushes one)."""
+    return AuditEntry(
         actor=actor,
         action=action,
         subject_kind=subject_kind,
@@ -39,9 +50,6 @@ def record(
         summary=summary[:SUMMARY_MAX],
         detail=json_safe(detail),
     )
-    session.add(entry)
-    session.flush()
-    return entry
 
 
 def _filtered(
