@@ -117,16 +117,45 @@ def fit_many(
     if noise not in ("value", "reading"):
         raise BadInput(f"noise must be 'value' or 'reading', not {noise!r}")
     units = list(datasets)
+    out = _batched(fam, opts, units, options)
+    for i, unit in enumerate(units):
+        if out[i] is None:
+            out[i] = _fit_one(i, family, unit, options)
+    return [f for f in out if f is not None]
+
+
+def fit_each(
+    family: str, datasets: Iterable[tuple[ArrayLike, ArrayLike]], **options: Any
+) -> list[Fit | CalibrationError]:
+    """``fit_many``, except that a unit ``fit`` cannot fit gives its error in its place (the
+    message as ``fit`` words it, without the unit's index) instead of raising: for callers that
+    keep going past a unit, e.g. a ranking where some families fail on some units."""
+    fam = get_family(family)
+    opts = fam.check_options({k: val for k, val in options.items() if k not in FIT_KEYWORDS})
+    if options.get("noise", "value") not in ("value", "reading"):
+        raise BadInput(f"noise must be 'value' or 'reading', not {options.get('noise')!r}")
+    units = list(datasets)
+    found: list[Fit | CalibrationError | None] = list(_batched(fam, opts, units, options))
+    for i, (reading, value) in enumerate(units):
+        if found[i] is None:
+            try:
+                found[i] = fit(family, reading, value, **options)
+            except CalibrationError as exc:
+                found[i] = exc
+    return [f for f in found if f is not None]
+
+
+def _batched(
+    fam: Family, opts: Mapping[str, Any], units: list[Any], options: Mapping[str, Any]
+) -> list[Fit | None]:
+    """The units the batch path fits (None for the others, left to ``fit``)."""
     out: list[Fit | None] = [None] * len(units)
     solver = _batch_solver(fam, options)
     if solver is not None:
         for _n, idx, r, v in _groups(units):
             solved = solver(fam, opts, r, v)
             _collect(out, fam, opts, idx, r, v, solved)
-    for i, unit in enumerate(units):
-        if out[i] is None:
-            out[i] = _fit_one(i, family, unit, options)
-    return [f for f in out if f is not None]
+    return out
 
 
 def _fit_one(i: int, family: str, unit: Any, options: Mapping[str, Any]) -> Fit:

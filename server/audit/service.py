@@ -4,7 +4,8 @@ describe (so a change rolled back leaves no entry) and are never updated or dele
 Actions: ``calibration.saved``, ``calibration.voided``, ``calibration.refitted``,
 ``unit.registered``, ``unit.updated``, ``unit.installed``, ``unit.removed``,
 ``sensor_type.created``, ``sensor_type.updated``, ``refit.started``, ``refit.finished``,
-``flag.acknowledged``. Services flush, never commit.
+``flag.acknowledged``, ``history.imported``. Services flush, never commit (the history import,
+which commits per batch, adds its entries with its rows: ``entry_of``).
 """
 
 from __future__ import annotations
@@ -31,7 +32,18 @@ def record(
     **detail: Any,
 ) -> AuditEntry:
     """Add one entry; flushed with the change it describes."""
-    entry = AuditEntry(
+    entry = entry_of(actor, action, subject_kind, subject, summary, **detail)
+    session.add(entry)
+    session.flush()
+    return entry
+
+
+def entry_of(
+    actor: str | None, action: str, subject_kind: str, subject: str, summary: str, **detail: Any
+) -> AuditEntry:
+    """An entry not yet added: for a bulk import that adds many with its rows (``record`` adds
+    and flushes one)."""
+    return AuditEntry(
         actor=actor,
         action=action,
         subject_kind=subject_kind,
@@ -39,9 +51,6 @@ def record(
         summary=summary[:SUMMARY_MAX],
         detail=json_safe(detail),
     )
-    session.add(entry)
-    session.flush()
-    return entry
 
 
 def _filtered(

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 from datetime import datetime
 from typing import Annotated
 
@@ -16,12 +17,16 @@ from server.accounts.deps import ApiTechnician, ApiViewer
 from server.accounts.models import User
 from server.calibrations import service
 from server.calibrations.csvfile import MAX_BYTES, parse_points_csv
+from server.calibrations.history import import_history
+from server.calibrations.history_csv import read_history
 from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import (
     CalibrationCreate,
     CalibrationRead,
     CalibrationSummaryRead,
     CurrentCalibrationRead,
+    HistoryImportRead,
+    HistoryProblemRead,
     VoidCreate,
 )
 from server.db import SessionDep
@@ -33,6 +38,8 @@ from server.fleet.service import get_unit
 from server.pagination import Page, PageParams, page_params
 
 router = APIRouter(prefix="/api/v1", tags=["calibrations"])
+
+HISTORY_MAX_BYTES = 50_000_000  # larger histories: `sensorledger import-history`
 
 BudgetReading = Annotated[
     float | None,
@@ -236,6 +243,57 @@ def current_calibration(
     found = service.current_calibration(unit, reading)
     found.calibration.flags = open_flags(unit)
     return found
+
+
+@router.post("/history")
+def import_history_file(
+    session: SessionDep,
+    user: ApiTechnician,
+    file: Annotated[
+        UploadFile,
+        File(
+            description="CSV, one row per point, with a header row: serial, sensor_type, "
+            "performed_at, operator, reference, reference_value, reading [, kind, notes]"
+        ),
+    ],
+) -> HistoryImportRead:
+    """Store a whole calibration history from one long CSV file (at most 50 MB; for more, or to
+    watch the progress, use `sensorledger import-history` on the server). Rows with the same
+    serial, performed_at, operator and reference form one session; missing units are created;
+    each session is fitted as a single upload would be and stored whole or not at all; sessions
+    stored already are skipped. Rows that cannot be stored are listed in ``problems`` by line
+    number. Committed in batches as it goes (a failure keeps the batches stored before it)."""
+    if file.size is not None and file.size > HISTORY_MAX_BYTES:
+        raise Invalid(
+            f"the file is larger than {HISTORY_MAX_BYTES // 1_000_000} MB; import it with "
+            f"`sensorledger import-history` on the server",
+            field="file",
+        )
+    parsed = read_history(io.TextIOWrapper(file.file, encoding="utf-8-sig", newline=""))
+    result = import_history(session, parsed, actor=user.name, source=file.filename or "upload")
+    return HistoryImportRead(
+        source=result.source,
+        rows=result.rows,
+        sessions=result.sessions,
+        stored=result.stored,
+        points=result.points,
+        skipped=result.skipped,
+        rejected=result.rejected,
+        rejected_rows=result.rejected_rows,
+        units_created=result.units_created,
+        flag_types=result.flag_types,
+        problems=[
+            HistoryProblemRead(
+                line=p.line,
+                session_lines=p.session_lines,
+                serial=p.serial,
+                performed_at=p.performed_at,
+                reason=p.reason,
+            )
+            for p in result.problems
+        ],
+        summary=result.summary(),
+    )
 
 
 def open_flags(unit: Unit) -> list[FlagRead]:

@@ -311,3 +311,30 @@ class JobRead(BaseModel):
     created_at: datetime
     started_at: datetime | None
     finished_at: datetime | None
+
+
+class HistoryProblemRead(BaseModel):
+    """A row (or a session, at its first line) of a history file that was not stored."""
+
+    line: int = Field(description="line number in the file (the header is line 1)")
+    session_lines: str = Field(description="the lines of its session, e.g. '12-26'")
+    serial: str
+    performed_at: str = Field(description="as written in the file")
+    reason: str
+
+
+class HistoryImportRead(BaseModel):
+    """What an import of a history file did."""
+
+    source: str
+    rows: int = Field(description="data rows read")
+    sessions: int = Field(description="sessions in the file")
+    stored: int
+    points: int = Field(description="points stored")
+    skipped: int = Field(description="sessions stored already (the same file imported before)")
+    rejected: int = Field(description="sessions not stored because of a problem")
+    rejected_rows: int
+    units_created: list[str]
+    flag_types: list[str] = Field(description="sensor types whose flags were recomputed")
+    problems: list[HistoryProblemRead]
+    summary: str

@@ -48,7 +48,7 @@ from server.fleet.service import due_on
 from shared.budget import TypeB, budget
 from shared.diagnostics import lack_of_fit, suspect_points
 from shared.fitting import Noise
-from shared.ranking import Candidate, Ranking, rank
+from shared.ranking import Candidate, Ranking, rank, rank_many
 
 ChosenBecause = Literal["requested", "recommended", "fallback"]
 
@@ -160,6 +160,35 @@ def fit_points(
         exclude=exclude,
         noise=NoiseIn(sensor_type.noise_in).value,
     )
+    return judge(sensor_type, ranking, family, type_b)
+
+
+def fit_many_points(
+    sensor_type: SensorType,
+    datasets: Sequence[tuple[Sequence[float], Sequence[float]]],
+    type_bs: Sequence[TypeB | None],
+) -> list[Outcome | Invalid]:
+    """``fit_points`` of many sessions of one type at once, each given as (readings, reference
+    values) with no excluded points and no requested family: the type's families are ranked
+    on all of them together (``shared.ranking.rank_many``, batched by family), then each is
+    judged as ``fit_points`` judges it. A session that cannot be fitted gets its Invalid in its
+    place; nothing is stored."""
+    rankings = rank_many(
+        candidates_of(sensor_type), datasets, noise=NoiseIn(sensor_type.noise_in).value
+    )
+    found: list[Outcome | Invalid] = []
+    for ranking, type_b in zip(rankings, type_bs, strict=True):
+        try:
+            found.append(judge(sensor_type, ranking, None, type_b))
+        except Invalid as exc:
+            found.append(exc)
+    return found
+
+
+def judge(
+    sensor_type: SensorType, ranking: Ranking, family: str | None, type_b: TypeB | None
+) -> Outcome:
+    """Keep one fit of the ranking (``choose``) and judge it against the type's tolerance."""
     chosen, because = choose(sensor_type, ranking, family)
     assert chosen.fit is not None  # choose() only returns candidates that were fitted
     result = chosen.fit

@@ -1,6 +1,6 @@
 """The `sensorledger` command: serve the app, upgrade the database, add users, create API tokens,
-import a file of points as a calibration, export a unit's calibration, back up the database, fit a
-file of points offline.
+import a file of points as a calibration or a whole history, export a unit's calibration, back up
+the database, fit a file of points offline.
 
 Every command but ``fit`` takes ``--db PATH|URL`` (a SQLite file or a SQLAlchemy URL); without it
 the database is ``$SENSORLEDGER_DATABASE_URL``, else the SQLite file ``./data/sensorledger.db``.
@@ -40,6 +40,7 @@ from server.cli.common import (
 from server.cli.database import _backup, _configure_backup, _db_upgrade
 from server.cli.exports import _configure_export, _export
 from server.cli.fitting import _configure_fit, _fit
+from server.cli.history import _configure_import_history, _import_history
 from server.cli.imports import _configure_import, _import
 from server.cli.serve import _configure_serve, _serve
 
@@ -93,6 +94,12 @@ COMMANDS = (
         _import,
     ),
     Command(
+        ("import-history",),
+        "store a whole calibration history from one long CSV file (units, sessions, points)",
+        _configure_import_history,
+        _import_history,
+    ),
+    Command(
         ("export",),
         "export a unit's current calibration: conversion table (CSV, JSON) or C header",
         _configure_export,
@@ -116,6 +123,7 @@ EPILOG = """examples:
   sensorledger serve --demo                     try it with an invented fleet
   sensorledger fit points.csv                   rank every family on a file of points
   sensorledger import points.csv --unit IR-0001 --operator tess --reference "jig DJ-2"
+  sensorledger import-history history.csv --report rejected.csv
   sensorledger export IR-0001 --format c --output ir_0001.h
   sensorledger backup backups/sensorledger-2025-06-01.db
   sensorledger user add ada --role admin        then sign in as ada
@@ -191,7 +199,3 @@ def _explain(exc: Exception, args: argparse.Namespace) -> int | None:
         )
         return EXIT_ENVIRONMENT
     return None
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

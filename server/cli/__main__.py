@@ -1,7 +1,5 @@
-"""`python -m server.cli` is `sensorledger`."""
-
-import sys
+"""`python -m server.cli`: the same as the `sensorledger` command."""
 
 from server.cli import main
 
-sys.exit(main())
+raise SystemExit(main())
