@@ -19,6 +19,7 @@ from server.accounts import service as accounts
 from server.accounts.models import Role
 from server.db import make_engine, make_sessionmaker
 from server.migrate import upgrade
+from tests.server.lines import pot_type
 
 ROOT = Path(__file__).resolve().parents[2]
 STARTUP_S = 60
@@ -90,17 +91,7 @@ def test_two_workers_serve_one_database_and_share_the_job_queue(tmp_path):
             time.sleep(0.2)
         workers = _children(proc.pid)
         assert len(workers) >= 2, workers  # uvicorn's supervisor and its 2 worker processes
-        body = {
-            "name": "Pot",
-            "quantity": "angle",
-            "value_unit": "deg",
-            "reading_unit": "counts",
-            "reading_min": 0,
-            "reading_max": 1023,
-            "families": ["line"],
-            "tolerance_abs": 1.0,
-        }
-        assert _post(f"{base}/api/v1/sensor-types", token, body)[0] == 201
+        assert _post(f"{base}/api/v1/sensor-types", token, pot_type("Pot"))[0] == 201
         status, job = _post(f"{base}/api/v1/sensor-types/Pot/refit", token, {})
         assert status in (200, 201, 202), job
         deadline = time.monotonic() + STARTUP_S
