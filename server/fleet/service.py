@@ -8,13 +8,14 @@ from datetime import date, datetime
 from typing import Any
 
 import numpy as np
-from sqlalchemy import func, select
-from sqlalchemy.orm import Session, selectinload
+from sqlalchemy import Row, Select, and_, func, select
+from sqlalchemy.orm import Session, aliased, selectinload
 
 import shared
 from server.audit import service as audit
 from server.calibrations.models import (
     CalibrationSession,
+    FitRecord,
     latest_session,
     stored_fit,
     valid_sessions,
@@ -29,7 +30,7 @@ from server.fleet.schemas import (
     UnitRead,
     UnitUpdate,
 )
-from server.pagination import PageParams, paged
+from server.pagination import PageParams
 from shared.drift import compare
 from shared.fleet import DueDate, due_date
 
@@ -238,10 +239,82 @@ def _with_history() -> tuple[Any, ...]:
 
 
 def get_unit(session: Session, serial: str) -> Unit:
+    """The unit with its type, sessions and fits loaded (pages that draw its history)."""
     unit = session.scalar(select(Unit).where(Unit.serial == serial).options(*_with_history()))
     if unit is None:
         raise NotFound(f"unit {serial!r} not found")
     return unit
+
+
+@dataclass(frozen=True, slots=True)
+class UnitRow:
+    """A unit as lists and lookups show it: its id (to join more to it) and its summary."""
+
+    id: int
+    read: UnitRead
+
+
+def _summarised(units: Select[Any]) -> Select[Any]:
+    """``units`` with each unit's type name, calibration count (not voided), and the time and
+    decision of its latest valid session (not voided, with a current fit; latest by
+    performed_at then id, as ``latest_session``), computed in the same statement."""
+    counted = aliased(CalibrationSession)
+    newest = aliased(CalibrationSession)
+    newest_fit = aliased(FitRecord)
+    latest = aliased(CalibrationSession)
+    latest_fit = aliased(FitRecord)
+    count = (
+        select(func.count(counted.id))
+        .where(counted.unit_id == Unit.id, counted.voided_at.is_(None))
+        .correlate(Unit)
+        .scalar_subquery()
+    )
+    latest_id = (
+        select(newest.id)
+        .join(newest_fit, and_(newest_fit.session_id == newest.id, newest_fit.is_current))
+        .where(newest.unit_id == Unit.id, newest.voided_at.is_(None))
+        .order_by(newest.performed_at.desc(), newest.id.desc())
+        .limit(1)
+        .correlate(Unit)
+        .scalar_subquery()
+    )
+    return (
+        units.add_columns(SensorType.name, count, latest.performed_at, latest_fit.passed)
+        .join(SensorType, SensorType.id == Unit.sensor_type_id)
+        .outerjoin(latest, latest.id == latest_id)
+        .outerjoin(latest_fit, and_(latest_fit.session_id == latest.id, latest_fit.is_current))
+    )
+
+
+def _row(found: Row[Unit, str, int, datetime | None, bool | None]) -> UnitRow:
+    unit, type_name, count, last_at, passed = found
+    due, basis = unit.due_on, unit.due_basis
+    if due is None and last_at is not None:  # never stored (before revision 0004): compute
+        due, basis = _stored_or_computed(unit)
+    return UnitRow(
+        id=unit.id,
+        read=UnitRead(
+            serial=unit.serial,
+            sensor_type=type_name,
+            status=unit.status,
+            installed_in=unit.installed_in,
+            received_on=unit.received_on,
+            notes=unit.notes,
+            calibration_count=count,
+            last_calibrated_at=last_at,
+            last_passed=passed,
+            due_on=due,
+            due_basis=basis,
+        ),
+    )
+
+
+def get_unit_read(session: Session, serial: str) -> UnitRead:
+    """The unit's summary (``unit_read``) in one query, without loading its sessions or fits."""
+    found = session.execute(_summarised(select(Unit).where(Unit.serial == serial))).one_or_none()
+    if found is None:
+        raise NotFound(f"unit {serial!r} not found")
+    return _row(found).read
 
 
 def list_units(
@@ -252,12 +325,15 @@ def list_units(
     status: UnitStatus | None = None,
     q: str | None = None,
     flag: str | None = None,
-) -> tuple[list[Unit], int]:
-    """Units ordered by serial, filtered; ``q`` matches part of the serial (any case); ``flag``
-    a flag kind (or "any") the unit has open."""
+) -> tuple[list[UnitRow], int]:
+    """Units ordered by serial, filtered, one page of their summaries and how many match in all;
+    ``q`` matches part of the serial (any case); ``flag`` a flag kind (or "any") the unit has
+    open. Two queries, whatever the page size."""
     query = select(Unit)
     if sensor_type:
-        query = query.join(Unit.sensor_type).where(SensorType.name == sensor_type)
+        query = query.where(
+            Unit.sensor_type_id.in_(select(SensorType.id).where(SensorType.name == sensor_type))
+        )
     if status:
         query = query.where(Unit.status == status)
     if flag:
@@ -268,7 +344,11 @@ def list_units(
     if q and q.strip():
         pattern = "%" + q.strip().lower().replace("%", r"\%").replace("_", r"\_") + "%"
         query = query.where(func.lower(Unit.serial).like(pattern, escape="\\"))
-    return paged(session, query.options(*_with_history()).order_by(Unit.serial), page)
+    total = session.scalar(select(func.count()).select_from(query.subquery())) or 0
+    rows = session.execute(
+        _summarised(query.order_by(Unit.serial).offset(page.offset).limit(page.per_page))
+    )
+    return [_row(found) for found in rows], total
 
 
 def find_unit_by_serial(session: Session, serial: str) -> Unit | None:
@@ -414,21 +494,3 @@ def due_on(unit: Unit) -> date | None:
 def due_basis(unit: Unit) -> str | None:
     """Why the unit is due then (see ``unit_due``)."""
     return _stored_or_computed(unit)[1]
-
-
-def unit_read(unit: Unit) -> UnitRead:
-    last = latest_session(unit.sessions)
-    fit = last.current_fit if last else None
-    return UnitRead(
-        serial=unit.serial,
-        sensor_type=unit.sensor_type.name,
-        status=unit.status,
-        installed_in=unit.installed_in,
-        received_on=unit.received_on,
-        notes=unit.notes,
-        calibration_count=sum(1 for s in unit.sessions if s.voided_at is None),
-        last_calibrated_at=last.performed_at if last else None,
-        last_passed=fit.passed if fit else None,
-        due_on=due_on(unit),
-        due_basis=due_basis(unit),
-    )
