@@ -257,10 +257,11 @@ class UnitRow:
 
 @cache
 def _summary_columns() -> tuple[Any, ...]:
-    """Each unit's type name, calibration count (not voided), and the time and decision of its
+    """The columns of ``UnitRead`` (labelled with its field names) and the unit's id: the unit's
+    own, its type's name, its calibration count (not voided), and the time and decision of its
     latest valid session (not voided, with a current fit; latest by performed_at then id, as
-    ``latest_session``): correlated subqueries on the unit's own sessions (their unit_id index).
-    Built once: building the aliased subqueries costs milliseconds, more than running them."""
+    ``latest_session``) as correlated subqueries on the unit's own sessions (their unit_id
+    index). Built once: building the aliased subqueries costs milliseconds, running them less."""
     counted = aliased(CalibrationSession)
     newest = aliased(CalibrationSession)
     newest_fit = aliased(FitRecord)
@@ -283,50 +284,51 @@ def _summary_columns() -> tuple[Any, ...]:
             .scalar_subquery()
         )
 
-    return SensorType.name, count, latest(newest.performed_at), latest(newest_fit.passed)
+    return (
+        Unit.id,
+        Unit.serial,
+        SensorType.name.label("sensor_type"),
+        Unit.status,
+        Unit.installed_in,
+        Unit.received_on,
+        Unit.notes,
+        count.label("calibration_count"),
+        latest(newest.performed_at).label("last_calibrated_at"),
+        latest(newest_fit.passed).label("last_passed"),
+        Unit.due_on,
+        Unit.due_basis,
+    )
 
 
-def _summarised(units: Select[Any]) -> Select[Any]:
-    """``units`` with their summary columns (``_summary_columns``), in the same statement."""
-    return units.add_columns(*_summary_columns()).join(
-        SensorType, SensorType.id == Unit.sensor_type_id
+def _summaries() -> Select[Any]:
+    """Units' summaries (``_summary_columns``); add the WHERE and ORDER BY."""
+    return select(*_summary_columns()).join_from(
+        Unit, SensorType, SensorType.id == Unit.sensor_type_id
     )
 
 
 @cache
 def _lookup() -> Select[Any]:
-    return _summarised(select(Unit).where(Unit.serial == bindparam("serial")))
+    return _summaries().where(Unit.serial == bindparam("serial"))
 
 
-def _row(found: Row[Unit, str, int, datetime | None, bool | None]) -> UnitRow:
-    unit, type_name, count, last_at, passed = found
-    due, basis = unit.due_on, unit.due_basis
-    if due is None and last_at is not None:  # never stored (before revision 0004): compute
-        due, basis = _stored_or_computed(unit)
-    return UnitRow(
-        id=unit.id,
-        read=UnitRead(
-            serial=unit.serial,
-            sensor_type=type_name,
-            status=unit.status,
-            installed_in=unit.installed_in,
-            received_on=unit.received_on,
-            notes=unit.notes,
-            calibration_count=count,
-            last_calibrated_at=last_at,
-            last_passed=passed,
-            due_on=due,
-            due_basis=basis,
-        ),
-    )
+def _row(session: Session, found: Row[Any]) -> UnitRow:
+    fields = dict(found._mapping)
+    unit_id = fields.pop("id")
+    if fields["due_on"] is None and fields["last_calibrated_at"] is not None:
+        # never stored (a database from before revision 0004, until its start stores it)
+        unit = session.get(Unit, unit_id)
+        if unit is not None:
+            fields["due_on"], fields["due_basis"] = _stored_or_computed(unit)
+    return UnitRow(id=unit_id, read=UnitRead(**fields))
 
 
 def get_unit_read(session: Session, serial: str) -> UnitRead:
-    """The unit's summary (``unit_read``) in one query, without loading its sessions or fits."""
+    """The unit's summary in one query, without loading its sessions or fits."""
     found = session.execute(_lookup(), {"serial": serial}).one_or_none()
     if found is None:
         raise NotFound(f"unit {serial!r} not found")
-    return _row(found).read
+    return _row(session, found).read
 
 
 def list_units(
@@ -362,8 +364,8 @@ def list_units(
     # OFFSET would otherwise compute them for every row it skips)
     ids = query.with_only_columns(Unit.id).order_by(Unit.serial)
     ids = ids.offset(page.offset).limit(page.per_page)
-    rows = session.execute(_summarised(select(Unit).where(Unit.id.in_(ids))).order_by(Unit.serial))
-    return [_row(found) for found in rows], total
+    rows = session.execute(_summaries().where(Unit.id.in_(ids)).order_by(Unit.serial))
+    return [_row(session, found) for found in rows], total
 
 
 def find_unit_by_serial(session: Session, serial: str) -> Unit | None:

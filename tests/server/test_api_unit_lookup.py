@@ -8,8 +8,9 @@ from contextlib import contextmanager
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from sqlalchemy import event
+from sqlalchemy import event, update
 
+from server.fleet.models import Unit
 from tests.server.lines import calibrate, line_points, pot_type
 
 START = datetime(2024, 3, 1, 9, 0, tzinfo=UTC)
@@ -85,6 +86,12 @@ def test_lookup_runs_the_same_few_statements_however_long_the_history(
         "due_basis",
     }
     assert client.get("/api/v1/units/LK-nope", headers=admin).status_code == 404
+
+    with app.state.sessionmaker() as session:  # as a database from before stored due dates
+        session.execute(update(Unit).values(due_on=None, due_basis=None))
+        session.commit()
+    again = client.get("/api/v1/units/LK-1", headers=admin).json()
+    assert (again["due_on"], again["due_basis"]) == (body["due_on"], body["due_basis"])
 
 
 def test_unit_list_runs_the_same_few_statements_whatever_the_page_size(
