@@ -8,7 +8,7 @@ import secrets
 from datetime import datetime, timedelta
 
 from sqlalchemy import select
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, joinedload
 
 from server.accounts.models import ROLE_RANK, Role, Token, TokenKind, User
 from server.db import utcnow
@@ -85,7 +85,9 @@ def create_token(
 
 def user_for_token(session: Session, raw: str, kind: TokenKind) -> User:
     token = session.scalar(
-        select(Token).where(Token.token_hash == token_hash(raw), Token.kind == kind)
+        select(Token)
+        .options(joinedload(Token.user))  # one query per request, user included
+        .where(Token.token_hash == token_hash(raw), Token.kind == kind)
     )
     now: datetime = utcnow()
     if (

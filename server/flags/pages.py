@@ -1,39 +1,114 @@
-"""Browser pages: "Needs attention" (flags by kind, acknowledge with a note) and the unit page's
-installation form."""
+"""Browser pages: "Needs attention" (counts, then one page of flags grouped by kind; each plot
+loaded when it scrolls into view; acknowledge with a note) and the unit page's installation
+form."""
 
 from __future__ import annotations
 
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
-from typing import Annotated, Any
+from enum import Enum
+from typing import Annotated, Any, TypeVar
+from urllib.parse import parse_qsl, urlencode, urlsplit
 
-from fastapi import APIRouter, Form, Request
+from fastapi import APIRouter, Depends, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from pydantic import ValidationError
+from sqlalchemy.orm import Session
 
 from server.accounts.deps import PageTechnician, PageViewer
 from server.accounts.models import ROLE_RANK, Role, User
 from server.calibrations.pages import blank_form, unit_context
 from server.db import SessionDep
 from server.errors import Invalid
-from server.flags import service
+from server.flags import attention, service
+from server.flags.attention import Section
 from server.flags.charts import drift_figure, errors_figure, outlier_figure
-from server.flags.models import EventKind, Flag, FlagKind
+from server.flags.models import EventKind, Flag, FlagKind, Severity
 from server.flags.panels import EventForm, unit_panels
 from server.flags.schemas import EventCreate
 from server.fleet.pages import unit_url
 from server.fleet.service import get_unit
 from server.htmx import is_partial, render
-from server.pagination import PageParams
+from server.pagination import PageParams, page_params
 
 router = APIRouter(include_in_schema=False)
+E = TypeVar("E", bound=Enum)
 
-ATTENTION_LIMIT = 500  # flags shown on the page at most
+DEFAULT_PER_PAGE = PageParams().per_page
+SECTION_TITLES = {
+    Section.action: "Act on these",
+    Section.warning: "Warnings",
+    Section.closed: "Closed: the condition no longer holds",
+}
+CHART_LABELS = {
+    FlagKind.fleet_outlier: "robust z of this unit against its siblings at each probe reading, "
+    "with the warning and action lines",
+    FlagKind.drift: "deviation of the newest curve from the previous one against reading, with "
+    "the drift limit and the simultaneous band",
+    FlagKind.failed_acceptance: "residual at each reference value against the allowed error",
+    FlagKind.out_of_tolerance_in_service: "as-found error at each reference value against the "
+    "allowed error",
+}
 
 
-def _card(flag: Flag, user: User, error: str | None = None, note: str = "") -> dict[str, Any]:
-    """One flag as the page shows it: the flag, its plot (every kind but overdue, whose
-    evidence is a date), the form's state."""
+@dataclass(frozen=True, slots=True)
+class AttentionQuery:
+    """What the page shows: open flags or all, one kind and/or severity, which page."""
+
+    show: str = "open"
+    kind: FlagKind | None = None
+    severity: Severity | None = None
+    page: int = 1
+    per_page: int = DEFAULT_PER_PAGE
+
+    def url(self, **change: Any) -> str:
+        """This view with ``change`` applied; defaults are left out of the query string."""
+        q = replace(self, **change)
+        query = {
+            "show": q.show if q.show != "open" else "",
+            "kind": str(q.kind or ""),
+            "severity": str(q.severity or ""),
+            "page": q.page if q.page != 1 else "",
+            "per_page": q.per_page if q.per_page != DEFAULT_PER_PAGE else "",
+        }
+        encoded = urlencode({k: v for k, v in query.items() if v != ""})
+        return f"/attention?{encoded}" if encoded else "/attention"
+
+
+def _choice(enum_type: type[E], value: str, field: str) -> E | None:
+    if not value:
+        return None
+    try:
+        return enum_type(value)
+    except ValueError:
+        choices = ", ".join(m.value for m in enum_type)
+        raise Invalid(f"unknown {field} {value!r}; one of: {choices}", field=field) from None
+
+
+def attention_query(
+    page: Annotated[PageParams, Depends(page_params)],
+    show: str = "open",
+    kind: str = "",
+    severity: str = "",
+) -> AttentionQuery:
+    """The page's query parameters, checked (422 naming the one at fault)."""
+    if show not in ("open", "all"):
+        raise Invalid("show is 'open' or 'all'", field="show")
+    return AttentionQuery(
+        show=show,
+        kind=_choice(FlagKind, kind, "kind"),
+        severity=_choice(Severity, severity, "severity"),
+        page=page.page,
+        per_page=page.per_page,
+    )
+
+
+def has_chart(flag: Flag) -> bool:
+    """Every kind but overdue (whose evidence is a date) has a plot."""
+    return flag.kind in CHART_LABELS
+
+
+def _figure_json(flag: Flag) -> str | None:
     figure = None
     if flag.kind is FlagKind.drift:
         figure = drift_figure(flag.evidence)
@@ -41,65 +116,136 @@ def _card(flag: Flag, user: User, error: str | None = None, note: str = "") -> d
         figure = outlier_figure(flag.evidence)
     elif flag.kind in (FlagKind.out_of_tolerance_in_service, FlagKind.failed_acceptance):
         figure = errors_figure(flag.evidence)
+    return figure.to_json() if figure is not None else None
+
+
+def _card(
+    flag: Flag, user: User, back: str, error: str | None = None, note: str = ""
+) -> dict[str, Any]:
+    """One flag as the page shows it: the flag, whether it has a plot (loaded later), the
+    acknowledgement form's state and the page to come back to."""
     return {
         "flag": flag,
-        "figure_json": figure.to_json() if figure is not None else None,
+        "has_chart": has_chart(flag),
         "error": error,
         "note": note,
+        "back": back,
         "can_acknowledge": ROLE_RANK[user.role] >= ROLE_RANK[Role.technician],
-    }
-
-
-def _cards_context(session: Any, user: User, show: str) -> dict[str, Any]:
-    flags, total = service.list_flags(
-        session,
-        PageParams(page=1, per_page=ATTENTION_LIMIT),
-        open_=None if show == "all" else True,
-    )
-    groups = []
-    for kind in FlagKind:
-        of_kind = [f for f in flags if f.kind is kind]
-        of_kind.sort(
-            key=lambda f: (
-                not f.open,
-                f.acknowledged_at is not None,
-                f.severity.value != "action",
-                f.unit.serial,
-            )
-        )
-        groups.append(
-            {
-                "kind": kind,
-                "title": service.TITLES[kind],
-                "abbreviation": service.ABBREVIATIONS[kind],
-                "cards": [_card(f, user) for f in of_kind],
-                "waiting": sum(1 for f in of_kind if f.open and f.acknowledged_at is None),
-            }
-        )
-    return {
-        "groups": groups,
-        "show": show,
-        "total": total,
-        "shown": len(flags),
-        "waiting": sum(g["waiting"] for g in groups),
         "unit_url": unit_url,
-        "any_drift": any(g["cards"] for g in groups if g["kind"] is FlagKind.drift),
     }
+
+
+def _counts_context(session: Session, query: AttentionQuery) -> dict[str, Any]:
+    counts = attention.count_open(session)
+    rows = [
+        {
+            "kind": kind,
+            "title": service.TITLES[kind],
+            "abbreviation": service.ABBREVIATIONS[kind],
+            "action": counts.of(kind, Severity.action),
+            "warning": counts.of(kind, Severity.warning),
+            "waiting": counts.waiting_of(kind),
+        }
+        for kind in FlagKind
+    ]
+    return {
+        "count_rows": rows,
+        "open_total": counts.of(),
+        "action_total": counts.of(severity=Severity.action),
+        "warning_total": counts.of(severity=Severity.warning),
+        "waiting": counts.waiting_of(),
+        "query": query,
+    }
+
+
+def _list_context(
+    session: Session, user: User, query: AttentionQuery, replaced: dict[str, Any] | None = None
+) -> dict[str, Any]:
+    """One page of flags in sections (open actions, open warnings, closed) of kind groups."""
+    flags, total = attention.list_page(
+        session,
+        PageParams(page=query.page, per_page=query.per_page),
+        show_closed=query.show == "all",
+        kind=query.kind,
+        severity=query.severity,
+    )
+    back = query.url()
+    sections: list[dict[str, Any]] = []
+    for flag in flags:
+        section = attention.section_of(flag)
+        if not sections or sections[-1]["section"] is not section:
+            sections.append({"section": section, "title": SECTION_TITLES[section], "groups": []})
+        groups = sections[-1]["groups"]
+        if not groups or groups[-1]["kind"] is not flag.kind:
+            groups.append(
+                {
+                    "kind": flag.kind,
+                    "title": service.TITLES[flag.kind],
+                    "abbreviation": service.ABBREVIATIONS[flag.kind],
+                    "cards": [],
+                }
+            )
+        card = (replaced or {}).get(str(flag.id)) or _card(flag, user, back)
+        groups[-1]["cards"].append(card)
+    offset = (query.page - 1) * query.per_page
+    last_page = max(1, -(-total // query.per_page))
+    return {
+        "sections": sections,
+        "total": total,
+        "first": offset + 1 if flags else 0,
+        "last": offset + len(flags),
+        "prev_url": query.url(page=min(query.page - 1, last_page)) if query.page > 1 else None,
+        "next_url": query.url(page=query.page + 1) if offset + len(flags) < total else None,
+        "query": query,
+        "flag_titles": service.TITLES,
+        "unit_url": unit_url,
+        "chart_labels": CHART_LABELS,
+    }
+
+
+def _page_context(
+    session: Session, user: User, query: AttentionQuery, replaced: dict[str, Any] | None = None
+) -> dict[str, Any]:
+    return {**_counts_context(session, query), **_list_context(session, user, query, replaced)}
+
+
+AttentionQueryDep = Annotated[AttentionQuery, Depends(attention_query)]
 
 
 @router.get("/attention")
-def attention(
-    request: Request, session: SessionDep, user: PageViewer, show: str = "open"
+def attention_page(
+    request: Request, session: SessionDep, user: PageViewer, query: AttentionQueryDep
 ) -> HTMLResponse:
-    """Needs attention: flags grouped by kind with their evidence; ``show=all`` adds closed ones."""
-    if show not in ("open", "all"):
-        raise Invalid("show is 'open' or 'all'", field="show")
+    """Needs attention: the counts by kind and severity, then one page of flags (open actions,
+    then warnings, then closed ones with ``show=all``) grouped by kind; each plot loads when it
+    scrolls into view. htmx (the pager) gets the ``list`` block."""
+    return render(
+        request, "flags/attention.html", block="list", **_page_context(session, user, query)
+    )
+
+
+@router.get("/attention/flags/{flag_id}/chart")
+def flag_chart(
+    request: Request, flag_id: int, session: SessionDep, user: PageViewer
+) -> HTMLResponse:
+    """One flag's plot: the ``chart`` block for htmx (when its card scrolls into view), else a
+    page with the flag and its plot."""
+    flag = service.get_flag(session, flag_id)
     return render(
         request,
-        "flags/attention.html",
-        block="groups",
-        **_cards_context(session, user, show),
+        "flags/chart.html",
+        block="chart",
+        flag=flag,
+        figure_json=_figure_json(flag),
+        chart_label=CHART_LABELS.get(flag.kind, ""),
+        flag_title=service.TITLES[flag.kind],
+        unit_url=unit_url,
     )
+
+
+def _back(text: str) -> str:
+    """The attention view to return to (a path on this site under /attention, else its start)."""
+    return text if text.startswith("/attention") and "//" not in text else "/attention"
 
 
 @router.post("/attention/flags/{flag_id}/acknowledge")
@@ -109,29 +255,52 @@ def acknowledge(
     session: SessionDep,
     user: PageTechnician,
     note: Annotated[str, Form()] = "",
+    back: Annotated[str, Form()] = "/attention",
 ) -> Response:
-    """Acknowledge with a note; htmx gets the flag's card back, a plain form the page."""
+    """Acknowledge with a note; htmx gets the flag's card back (and the counts, out of band), a
+    plain form the page it came from."""
+    back = _back(back)
     flag = service.get_flag(session, flag_id)
     try:
         service.acknowledge(session, flag, note, user.name)
     except Invalid as exc:
         session.rollback()
         flag = service.get_flag(session, flag_id)
-        card = _card(flag, user, error=exc.message, note=note)
-        ctx = _cards_context(session, user, "open")
-        for group in ctx["groups"]:
-            group["cards"] = [card if c["flag"].id == flag.id else c for c in group["cards"]]
-        return render(request, "flags/attention.html", block="groups", status_code=422, **ctx)
+        card = _card(flag, user, back, error=exc.message, note=note)
+        if is_partial(request):
+            return render(
+                request, "flags/card.html", block="card", status_code=422, oob=False, **card
+            )
+        query = _query_of(back)
+        ctx = _page_context(session, user, query, replaced={str(flag.id): card})
+        return render(request, "flags/attention.html", block="list", status_code=422, **ctx)
     session.commit()
     if is_partial(request):
         return render(
             request,
-            "flags/attention.html",
-            block="groups",
+            "flags/card.html",
+            block="card",
+            oob=True,
             attention_count=service.count_needing_attention(session),
-            **_cards_context(session, user, "open"),
+            **_counts_context(session, _query_of(back)),
+            **_card(flag, user, back),
         )
-    return RedirectResponse(f"/attention#flag-{flag.id}", status_code=303)
+    return RedirectResponse(f"{back}#flag-{flag.id}", status_code=303)
+
+
+def _query_of(url: str) -> AttentionQuery:
+    """The attention view an ``AttentionQuery.url`` names (what cannot be read: the default)."""
+    params = dict(parse_qsl(urlsplit(url).query))
+    try:
+        page = PageParams(
+            page=max(1, int(params.get("page", 1))),
+            per_page=min(500, max(1, int(params.get("per_page", DEFAULT_PER_PAGE)))),
+        )
+        return attention_query(
+            page, params.get("show", "open"), params.get("kind", ""), params.get("severity", "")
+        )
+    except (ValueError, Invalid):
+        return AttentionQuery()
 
 
 def _event_at(text: str) -> datetime:

@@ -687,9 +687,9 @@ def flags_of(unit: Unit) -> list[Flag]:
 
 
 def count_needing_attention(session: Session) -> int:
-    """Open flags nobody has acknowledged: the number beside "Needs attention"."""
-    query = _filtered(None, None, True, False)
-    return session.scalar(select(func.count()).select_from(query.subquery())) or 0
+    """Open flags nobody has acknowledged: the number beside "Needs attention" (every page)."""
+    query = select(func.count(Flag.id)).where(Flag.open.is_(True), Flag.acknowledged_at.is_(None))
+    return session.scalar(query) or 0
 
 
 def open_kinds_by_unit(session: Session, unit_ids: list[int]) -> dict[int, list[Flag]]:

@@ -95,7 +95,7 @@ def fleet(
         q=q,
         flag=_flag(flag),
     )
-    serial_of = {u.id: u.serial for u in units}
+    serial_of = {u.id: u.read.serial for u in units}
     ids = list(serial_of)
     first = page.offset + 1 if units else 0
     last = page.offset + len(units)
@@ -107,7 +107,7 @@ def fleet(
         request,
         "fleet/page.html",
         block="results",
-        rows=[service.unit_read(u) for u in units],
+        rows=[u.read for u in units],
         flags={serial_of[uid]: found for uid, found in open_kinds_by_unit(session, ids).items()},
         flag_abbreviations=ABBREVIATIONS,
         flag_titles=TITLES,

@@ -112,7 +112,7 @@ def create_unit(data: UnitCreate, session: SessionDep, user: ApiTechnician) -> U
     """Register a unit received into stock."""
     unit = service.create_unit(session, data, actor=user.name)
     session.commit()
-    return service.unit_read(service.get_unit(session, unit.serial))
+    return service.get_unit_read(session, unit.serial)
 
 
 @router.get("/units")
@@ -129,11 +129,11 @@ def list_units(
     ] = None,
 ) -> Page[UnitRead]:
     """Units by serial, filtered by type, status, part of the serial and open flags."""
-    units, total = service.list_units(
+    rows, total = service.list_units(
         session, page, sensor_type=sensor_type, status=status, q=q, flag=flag
     )
     return Page(
-        items=[service.unit_read(u) for u in units],
+        items=[row.read for row in rows],
         total=total,
         page=page.page,
         per_page=page.per_page,
@@ -143,7 +143,7 @@ def list_units(
 @router.get("/units/{serial}")
 def get_unit(serial: str, session: SessionDep, user: ApiViewer) -> UnitRead:
     """One unit with its calibration summary."""
-    return service.unit_read(service.get_unit(session, serial))
+    return service.get_unit_read(session, serial)
 
 
 @router.patch("/units/{serial}")
@@ -157,4 +157,4 @@ def update_unit(
     if "status" in changed:
         recompute_flags(session, unit.sensor_type, units=[unit])
     session.commit()
-    return service.unit_read(service.get_unit(session, serial))
+    return service.get_unit_read(session, serial)

@@ -5,16 +5,18 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass
 from datetime import date, datetime
+from functools import cache
 from typing import Any
 
 import numpy as np
-from sqlalchemy import func, select
-from sqlalchemy.orm import Session, selectinload
+from sqlalchemy import Row, Select, and_, bindparam, func, select
+from sqlalchemy.orm import Session, aliased, selectinload
 
 import shared
 from server.audit import service as audit
 from server.calibrations.models import (
     CalibrationSession,
+    FitRecord,
     latest_session,
     stored_fit,
     valid_sessions,
@@ -29,7 +31,7 @@ from server.fleet.schemas import (
     UnitRead,
     UnitUpdate,
 )
-from server.pagination import PageParams, paged
+from server.pagination import PageParams
 from shared.drift import compare
 from shared.fleet import DueDate, due_date
 
@@ -238,13 +240,98 @@ def _with_history() -> tuple[Any, ...]:
 
 
 def get_unit(session: Session, serial: str, *, lock: bool = False) -> Unit:
-    """The unit with its sessions; ``lock``: row-locked until the transaction ends (PostgreSQL;
-    a SQLite writer holds the whole database), so two changes of one unit take turns."""
+    """The unit with its type, sessions and fits loaded (pages that draw its history);
+    ``lock``: row-locked until the transaction ends (PostgreSQL; a SQLite writer holds the
+    whole database), so two changes of one unit take turns."""
     query = select(Unit).where(Unit.serial == serial).options(*_with_history())
     unit = session.scalar(query.with_for_update(of=Unit) if lock else query)
     if unit is None:
         raise NotFound(f"unit {serial!r} not found")
     return unit
+
+
+@dataclass(frozen=True, slots=True)
+class UnitRow:
+    """A unit as lists and lookups show it: its id (to join more to it) and its summary."""
+
+    id: int
+    read: UnitRead
+
+
+@cache
+def _summary_columns() -> tuple[Any, ...]:
+    """The columns of ``UnitRead`` (labelled with its field names) and the unit's id: the unit's
+    own, its type's name, its calibration count (not voided), and the time and decision of its
+    latest valid session (not voided, with a current fit; latest by performed_at then id, as
+    ``latest_session``) as correlated subqueries on the unit's own sessions (their unit_id
+    index). Built once: building the aliased subqueries costs milliseconds, running them less."""
+    counted = aliased(CalibrationSession)
+    newest = aliased(CalibrationSession)
+    newest_fit = aliased(FitRecord)
+    count = (
+        select(func.count(counted.id))
+        .where(counted.unit_id == Unit.id, counted.voided_at.is_(None))
+        .correlate(Unit)
+        .scalar_subquery()
+    )
+
+    def latest(column: Any) -> Any:
+        return (
+            select(column)
+            .select_from(newest)
+            .join(newest_fit, and_(newest_fit.session_id == newest.id, newest_fit.is_current))
+            .where(newest.unit_id == Unit.id, newest.voided_at.is_(None))
+            .order_by(newest.performed_at.desc(), newest.id.desc())
+            .limit(1)
+            .correlate(Unit)
+            .scalar_subquery()
+        )
+
+    return (
+        Unit.id,
+        Unit.serial,
+        SensorType.name.label("sensor_type"),
+        Unit.status,
+        Unit.installed_in,
+        Unit.received_on,
+        Unit.notes,
+        count.label("calibration_count"),
+        latest(newest.performed_at).label("last_calibrated_at"),
+        latest(newest_fit.passed).label("last_passed"),
+        Unit.due_on,
+        Unit.due_basis,
+    )
+
+
+def _summaries() -> Select[Any]:
+    """Units' summaries (``_summary_columns``); add the WHERE and ORDER BY."""
+    return select(*_summary_columns()).join_from(
+        Unit, SensorType, SensorType.id == Unit.sensor_type_id
+    )
+
+
+@cache
+def _lookup() -> Select[Any]:
+    return _summaries().where(Unit.serial == bindparam("serial"))
+
+
+def _row(session: Session, found: Row[Any]) -> UnitRow:
+    fields = dict(found._mapping)
+    unit_id = fields.pop("id")
+    if fields["due_on"] is None and fields["last_calibrated_at"] is not None:
+        # never stored (a database from before revision 0004, until its start stores it)
+        unit = session.get(Unit, unit_id)
+        if unit is not None:
+            fields["due_on"], fields["due_basis"] = _stored_or_computed(unit)
+    return UnitRow(id=unit_id, read=UnitRead(**fields))
+
+
+def get_unit_read(session: Session, serial: str) -> UnitRead:
+    """The unit's summary in one query, without loading its sessions or fits."""
+    found = session.execute(_lookup(), {"serial": serial}).one_or_none()
+    if found is None:
+        raise NotFound(f"unit {serial!r} not found")
+    return _row(session, found).read
 
 
 def list_units(
@@ -255,12 +342,15 @@ def list_units(
     status: UnitStatus | None = None,
     q: str | None = None,
     flag: str | None = None,
-) -> tuple[list[Unit], int]:
-    """Units ordered by serial, filtered; ``q`` matches part of the serial (any case); ``flag``
-    a flag kind (or "any") the unit has open."""
+) -> tuple[list[UnitRow], int]:
+    """Units ordered by serial, filtered, one page of their summaries and how many match in all;
+    ``q`` matches part of the serial (any case); ``flag`` a flag kind (or "any") the unit has
+    open. Two queries, whatever the page size."""
     query = select(Unit)
     if sensor_type:
-        query = query.join(Unit.sensor_type).where(SensorType.name == sensor_type)
+        query = query.where(
+            Unit.sensor_type_id.in_(select(SensorType.id).where(SensorType.name == sensor_type))
+        )
     if status:
         query = query.where(Unit.status == status)
     if flag:
@@ -271,7 +361,14 @@ def list_units(
     if q and q.strip():
         pattern = "%" + q.strip().lower().replace("%", r"\%").replace("_", r"\_") + "%"
         query = query.where(func.lower(Unit.serial).like(pattern, escape="\\"))
-    return paged(session, query.options(*_with_history()).order_by(Unit.serial), page)
+    counted = query.with_only_columns(Unit.id).subquery()
+    total = session.scalar(select(func.count()).select_from(counted)) or 0
+    # the page's ids first, so that the summaries are computed for its rows alone (a deep
+    # OFFSET would otherwise compute them for every row it skips)
+    ids = query.with_only_columns(Unit.id).order_by(Unit.serial)
+    ids = ids.offset(page.offset).limit(page.per_page)
+    rows = session.execute(_summaries().where(Unit.id.in_(ids)).order_by(Unit.serial))
+    return [_row(session, found) for found in rows], total
 
 
 def find_unit_by_serial(session: Session, serial: str) -> Unit | None:
@@ -417,21 +514,3 @@ def due_on(unit: Unit) -> date | None:
 def due_basis(unit: Unit) -> str | None:
     """Why the unit is due then (see ``unit_due``)."""
     return _stored_or_computed(unit)[1]
-
-
-def unit_read(unit: Unit) -> UnitRead:
-    last = latest_session(unit.sessions)
-    fit = last.current_fit if last else None
-    return UnitRead(
-        serial=unit.serial,
-        sensor_type=unit.sensor_type.name,
-        status=unit.status,
-        installed_in=unit.installed_in,
-        received_on=unit.received_on,
-        notes=unit.notes,
-        calibration_count=sum(1 for s in unit.sessions if s.voided_at is None),
-        last_calibrated_at=last.performed_at if last else None,
-        last_passed=fit.passed if fit else None,
-        due_on=due_on(unit),
-        due_basis=due_basis(unit),
-    )

@@ -320,6 +320,9 @@ def main() -> int:
         f"{'curve_fit defaults (informative)':<40}: max relative difference "
         f"{informative.agreement:.1e} (stops short of the minimum; not checked)"
     )
+    from tests.bench.pages_bench import run_pages  # serves the app on 10,000 units (~1.5 min)
+
+    ok &= run_pages()
     from tests.bench.history_bench import report as history_report  # ~10 min at 10,000 units
 
     print("\n" + "\n".join(history_report()))

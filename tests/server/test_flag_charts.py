@@ -291,10 +291,12 @@ def browser_client(demo: Demo) -> Iterator[TestClient]:
 
 def test_attention_page_plots_the_odd_unit(demo: Demo, browser_client: TestClient) -> None:
     flag = demo.flag(ODD_SERIAL, FlagKind.fleet_outlier)
-    html = browser_client.get("/attention").text
+    html = browser_client.get("/attention?kind=fleet_outlier").text
     card = re.search(rf'<article[^>]*id="flag-{flag.id}".*?</article>', html, re.S)
     assert card is not None and ODD_SERIAL in card.group(0)
-    (figure,) = figures_in(card.group(0))
+    assert f'hx-get="/attention/flags/{flag.id}/chart" hx-trigger="revealed"' in card.group(0)
+    chart = browser_client.get(f"/attention/flags/{flag.id}/chart", headers={"HX-Request": "true"})
+    (figure,) = figures_in(chart.text)
     (main,) = [t for t in figure["data"] if t["name"] == "robust z"]
     assert list(main["y"]) == pytest.approx(flag.evidence["probe_z"], rel=1e-12)
 

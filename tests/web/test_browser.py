@@ -313,8 +313,9 @@ def test_needs_attention_shows_a_drift_flag_and_takes_an_acknowledgement(
     assert row.locator("td.flags .flag-abbr", has_text="DRIFT").count() == 1
     nav.click()
     page.wait_for_url(re.compile(r"/attention$"))
-    card = page.locator("#kind-drift .flag-card", has_text=fleet.spare)
+    card = page.locator(".flag-group[data-kind=drift] .flag-card", has_text=fleet.spare)
     assert card.count() == 1
+    card.scroll_into_view_if_needed()  # its plot loads when it comes into view
     card.locator(".flag-plot.js-plotly-plot .main-svg").first.wait_for()
     assert card.locator(".flag-plot .scatterlayer .trace").count() >= 3  # band, deviation, limit
     evidence = card.locator(".evidence").inner_text()
@@ -326,7 +327,9 @@ def test_needs_attention_shows_a_drift_flag_and_takes_an_acknowledgement(
     page.evaluate("window.__same_document = true")
     card.locator("input[name=note]").fill("pulled from rover R2; recalibrate before reuse")
     card.locator("button", has_text="Acknowledge").click()
-    done = page.locator("#kind-drift .flag-card.acknowledged", has_text=fleet.spare)
+    done = page.locator(
+        ".flag-group[data-kind=drift] .flag-card.acknowledged", has_text=fleet.spare
+    )
     done.wait_for()
     text = done.locator(".acknowledgement").inner_text()
     assert TECHNICIAN[0] in text and "pulled from rover R2" in text

@@ -39,7 +39,7 @@ def test_attention_lists_flags_by_kind_with_a_count_in_the_nav(client) -> None:
     page = client.get("/attention")
     assert page.status_code == 200
     html = page.text
-    assert 'id="kind-failed_acceptance"' in html and 'id="kind-overdue"' in html
+    assert 'data-kind="failed_acceptance"' in html and 'data-kind="overdue"' in html
     assert "IR-0002" in html and "days overdue" in html
     assert re.search(r'<span id="nav-count" class="nav-count">\d+</span>', html)
     fleet = client.get("/").text
@@ -49,7 +49,7 @@ def test_attention_lists_flags_by_kind_with_a_count_in_the_nav(client) -> None:
 
 def test_acknowledge_without_javascript(client) -> None:
     html = client.get("/attention").text
-    flag_id = int(re.search(r'id="kind-overdue".*?id="flag-(\d+)"', html, re.S).group(1))
+    flag_id = int(re.search(r'data-kind="overdue".*?id="flag-(\d+)"', html, re.S).group(1))
     url = f"/attention/flags/{flag_id}/acknowledge"
     empty = client.post(url, data={"note": "  "}, follow_redirects=False)
     assert empty.status_code == 422
@@ -63,17 +63,21 @@ def test_acknowledge_without_javascript(client) -> None:
     assert again.status_code == 409
 
 
-def test_acknowledge_with_htmx_swaps_the_groups_and_the_nav_count(client) -> None:
+def test_acknowledge_with_htmx_swaps_the_card_the_counts_and_the_nav_count(client) -> None:
     html = client.get("/attention").text
-    flag_id = int(re.search(r'id="kind-failed_acceptance".*?id="flag-(\d+)"', html, re.S).group(1))
+    found = re.search(r'data-kind="failed_acceptance".*?id="flag-(\d+)"', html, re.S)
+    flag_id = int(found.group(1))
+    waiting = int(re.search(r"<strong>(\d+)</strong> open flag", html).group(1))
     url = f"/attention/flags/{flag_id}/acknowledge"
     bad = client.post(url, data={"note": ""}, headers={"HX-Request": "true"})
-    assert bad.status_code == 422 and bad.text.lstrip().startswith('<div id="groups">')
-    assert "a note is needed" in bad.text
-    waiting = int(re.search(r"<strong>(\d+)</strong> open flag", bad.text).group(1))
+    assert bad.status_code == 422 and bad.text.lstrip().startswith("<article")
+    assert f'id="flag-{flag_id}"' in bad.text and "a note is needed" in bad.text
+    assert "hx-swap-oob" not in bad.text  # nothing changed: the counts stay
     ok = client.post(url, data={"note": "sent back"}, headers={"HX-Request": "true"})
     assert ok.status_code == 200 and "<html" not in ok.text
+    assert ok.text.lstrip().startswith('<article class="flag-card severity-action acknowledged"')
     assert "sent back" in ok.text
+    assert 'id="attention-counts"' in ok.text and 'hx-swap-oob="true"' in ok.text
     assert f"<strong>{waiting - 1}</strong> open flag" in ok.text  # the counts follow
     assert re.search(rf'id="nav-count"[^>]*hx-swap-oob="true"[^>]*>{waiting - 1}<', ok.text)
 
