@@ -3,6 +3,7 @@ whatever a unit's history or the page's size, with the same answer as the unit's
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import UTC, datetime, timedelta
@@ -19,11 +20,15 @@ LOOKUP_STATEMENTS = 2  # the token with its user, the unit with its summary
 
 @contextmanager
 def statements(app: Any) -> Iterator[list[str]]:
-    """The SQL statements run on the app's engine inside the block."""
+    """The SQL statements the requests run on the app's engine inside the block: not those of
+    the background job runner's threads, nor transaction control such as SQLite's BEGIN."""
     seen: list[str] = []
 
     def count(conn: Any, cursor: Any, statement: str, *args: Any) -> None:
-        seen.append(statement)
+        if threading.current_thread().name.startswith("sensorledger-"):
+            return
+        if statement.split(None, 1)[0].upper() not in {"BEGIN", "COMMIT", "ROLLBACK"}:
+            seen.append(statement)
 
     event.listen(app.state.engine, "before_cursor_execute", count)
     try:
