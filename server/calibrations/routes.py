@@ -30,6 +30,7 @@ from server.flags.schemas import FlagRead
 from server.flags.service import flag_read, flags_of, recompute_flags
 from server.fleet.models import Unit
 from server.fleet.service import get_unit
+from server.idempotency.models import IdempotentResponse
 from server.pagination import Page, PageParams, page_params
 
 router = APIRouter(prefix="/api/v1", tags=["calibrations"])
@@ -87,29 +88,38 @@ def _store(
     if key is not None:
         earlier = idempotency.find(session, user.name, key, route, digest)
         if earlier is not None:
-            return JSONResponse(
-                earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
-            )
+            return _replay(earlier)
     unit = get_unit(session, serial, lock=True)
+    if key is not None:
+        # a request with the same key may have committed while this one waited for the unit
+        # (PostgreSQL's row lock; each statement sees what was committed before it)
+        earlier = idempotency.find(session, user.name, key, route, digest)
+        if earlier is not None:
+            return _replay(earlier)
     record = service.run_calibration(session, unit, data, recorded_by=user.name)
     recompute_flags(session, unit.sensor_type, units=[unit])
     answer = service.calibration_read(record).model_copy(update={"flags": open_flags(unit)})
     body = answer.model_dump(mode="json")
-    if key is not None:
-        idempotency.keep(session, user.name, key, route, digest, 201, body)
     try:
+        if key is not None:
+            idempotency.keep(session, user.name, key, route, digest, 201, body)
         session.commit()
     except IntegrityError:
         if key is None:
             raise
-        session.rollback()  # the same key, committed by a request that ran at the same time
+        # the same key, stored by a request that ran at the same time (PostgreSQL raises at the
+        # insert, once the other transaction committed): roll this one back and replay that
+        session.rollback()
         earlier = idempotency.find(session, user.name, key, route, digest)
         if earlier is None:
             raise
-        return JSONResponse(
-            earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
-        )
+        return _replay(earlier)
     return JSONResponse(body, 201)
+
+
+def _replay(earlier: IdempotentResponse) -> JSONResponse:
+    """The answer stored for an earlier request with the same Idempotency-Key."""
+    return JSONResponse(earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"})
 
 
 @router.post("/units/{serial}/calibrations/csv", status_code=201, response_model=CalibrationRead)
