@@ -320,6 +320,9 @@ def main() -> int:
         f"{'curve_fit defaults (informative)':<40}: max relative difference "
         f"{informative.agreement:.1e} (stops short of the minimum; not checked)"
     )
+    from tests.bench.save_bench import report as save_report  # seeds 2 x 10,100 units (~1 min)
+
+    ok &= save_report()
     return 0 if ok else 1
 
 
