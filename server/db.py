@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import math
+import sqlite3
+import threading
+from collections import deque
 from collections.abc import Iterator
 from datetime import UTC, date, datetime
 from pathlib import Path
@@ -107,12 +110,77 @@ def make_engine(url: str, *, busy_timeout_ms: int = DEFAULT_BUSY_TIMEOUT_MS) -> 
         cur.execute("PRAGMA foreign_keys=ON")
         cur.close()
 
+    turns = WriterQueue()  # this process's writers, in the order they asked
+    wait_s = busy_timeout_ms / 1000
+
     @event.listens_for(engine, "begin")
     def _begin(conn: Connection) -> None:
-        write = conn.get_execution_options().get(WRITE, False)
-        conn.exec_driver_sql("BEGIN IMMEDIATE" if write else "BEGIN")
+        if not conn.get_execution_options().get(WRITE, False):
+            conn.exec_driver_sql("BEGIN")
+            return
+        if not turns.acquire(wait_s):
+            raise sqlite3.OperationalError("database is locked (this process's writers queued)")
+        conn.info[HOLDS_TURN] = True
+        try:
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+        except BaseException:
+            _end(conn)
+            raise
+
+    @event.listens_for(engine, "commit")
+    @event.listens_for(engine, "rollback")
+    def _end(conn: Connection) -> None:
+        if conn.info.pop(HOLDS_TURN, False):
+            turns.release()
+
+    @event.listens_for(engine.pool, "checkin")
+    def _returned(_dbapi_conn: Any, record: Any) -> None:  # a transaction never ended
+        if record is not None and record.info.pop(HOLDS_TURN, False):
+            turns.release()
 
     return engine
+
+
+HOLDS_TURN = "sensorledger_holds_write_turn"  # Connection.info: this connection has the turn
+
+
+class WriterQueue:
+    """First come, first served among one process's SQLite writers.
+
+    SQLite's busy handler makes a writer waiting for the write lock sleep and try again (up to
+    100 ms apart), so under steady contention the lock goes to whoever tries at the right moment,
+    not to who waited longest: with 16 writers some waited out the whole busy timeout and
+    failed with "database is locked" (a 500). Writers of one process therefore queue here, in
+    order, before BEGIN IMMEDIATE; only the one at the front competes for SQLite's lock (with
+    other processes, if any). ``acquire`` waits at most ``timeout`` seconds."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._held = False
+        self._waiting: deque[threading.Event] = deque()
+
+    def acquire(self, timeout: float) -> bool:
+        with self._lock:
+            if not self._held and not self._waiting:
+                self._held = True
+                return True
+            turn = threading.Event()
+            self._waiting.append(turn)
+        if turn.wait(timeout):
+            return True
+        with self._lock:
+            if turn.is_set():  # handed over as the wait ran out
+                return True
+            self._waiting.remove(turn)
+            return False
+
+    def release(self) -> None:
+        """Hand the turn to the next writer in line (it stays held), or free it."""
+        with self._lock:
+            if self._waiting:
+                self._waiting.popleft().set()
+            else:
+                self._held = False
 
 
 def writer(engine: Engine) -> Engine:

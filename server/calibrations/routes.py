@@ -35,6 +35,7 @@ from server.flags.schemas import FlagRead
 from server.flags.service import flag_read, flags_of, recompute_flags
 from server.fleet.models import Unit
 from server.fleet.service import get_unit
+from server.idempotency.models import IdempotentResponse
 from server.pagination import Page, PageParams, page_params
 
 router = APIRouter(prefix="/api/v1", tags=["calibrations"])
@@ -91,22 +92,17 @@ def _store(
     key = idempotency.check_key(key)
     route = f"POST /api/v1/units/{serial}/calibrations"
     digest = idempotency.digest(request_body)
-
-    def replay() -> Response | None:
-        assert key is not None
+    if key is not None:
         earlier = idempotency.find(session, user.name, key, route, digest)
-        if earlier is None:
-            return None
-        return JSONResponse(
-            earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"}
-        )
-
-    if key is not None and (found := replay()) is not None:
-        return found
+        if earlier is not None:
+            return _replay(earlier)
     unit = get_unit(session, serial, lock=True)
-    # a retry that waited for the unit behind its first attempt finds that answer now
-    if key is not None and (found := replay()) is not None:
-        return found
+    if key is not None:
+        # a request with the same key may have committed while this one waited for the unit
+        # (PostgreSQL's row lock; each statement sees what was committed before it)
+        earlier = idempotency.find(session, user.name, key, route, digest)
+        if earlier is not None:
+            return _replay(earlier)
     record = service.run_calibration(session, unit, data, recorded_by=user.name)
     recompute_flags(session, unit.sensor_type, units=[unit])
     answer = service.calibration_read(record).model_copy(update={"flags": open_flags(unit)})
@@ -118,11 +114,19 @@ def _store(
     except IntegrityError:
         if key is None:
             raise
-        session.rollback()  # the same key, stored by a request that ran at the same time
-        if (found := replay()) is None:
+        # the same key, stored by a request that ran at the same time (PostgreSQL raises at the
+        # insert, once the other transaction committed): roll this one back and replay that
+        session.rollback()
+        earlier = idempotency.find(session, user.name, key, route, digest)
+        if earlier is None:
             raise
-        return found
+        return _replay(earlier)
     return JSONResponse(body, 201)
+
+
+def _replay(earlier: IdempotentResponse) -> JSONResponse:
+    """The answer stored for an earlier request with the same Idempotency-Key."""
+    return JSONResponse(earlier.body, earlier.status_code, headers={"Idempotency-Replayed": "true"})
 
 
 @router.post("/units/{serial}/calibrations/csv", status_code=201, response_model=CalibrationRead)

@@ -17,7 +17,8 @@ fleet. It is therefore kept apart from a calibration's own work:
   transaction.
 
 Two comparisons of one type never write at the same time: the write locks the type's row
-(PostgreSQL) or holds the write lock (SQLite); the job queue runs one job per type at a time.
+(PostgreSQL, FOR NO KEY UPDATE, which leaves saves free to queue the next job) or holds the write
+lock (SQLite); the job queue runs one job per type at a time.
 A change committed after a job read the fleet queues the next job, so the flags catch up.
 """
 
@@ -251,8 +252,13 @@ def write(session: Session, comparison: Comparison) -> list[Flag]:
     """Store a comparison: the refreshed curves (only where the unit still has the fit they
     were computed from), the type's probe readings, and its fleet flags raised, refreshed or
     closed. The open fleet flags."""
+    # FOR NO KEY UPDATE (PostgreSQL): two writes of one type take turns, but a save of one of
+    # its units may still queue the next job (the job row's foreign key takes KEY SHARE on this
+    # row) while this write waits for that unit's row lock; FOR UPDATE deadlocked them
     st = session.scalar(
-        select(SensorType).where(SensorType.id == comparison.sensor_type_id).with_for_update()
+        select(SensorType)
+        .where(SensorType.id == comparison.sensor_type_id)
+        .with_for_update(key_share=True)
     )
     if st is None:
         return []

@@ -27,6 +27,7 @@ from server.jobs import service
 from server.jobs.models import Job, JobKind
 
 log = logging.getLogger("sensorledger.jobs")
+HEARTBEAT_S = 5.0  # a running job's heartbeat at most this far apart
 
 
 class Stopping(Exception):
@@ -72,14 +73,19 @@ class JobRunner:
         handlers: Mapping[JobKind, Handler],
         *,
         poll_s: float = 1.0,
-        heartbeat_s: float = 5.0,
+        heartbeat_s: float | None = None,
         stale_after_s: float = 60.0,
     ) -> None:
+        """``heartbeat_s``: how often a running job's heartbeat is written; by default
+        ``min(5, stale_after_s / 4)``, so that a live job never looks stale to another process
+        (a job quieter than the stale limit was taken over and run again, then failed)."""
         self._factory = factory
         self._read = read_factory
         self._handlers = dict(handlers)
         self._poll_s = poll_s
-        self._heartbeat_s = heartbeat_s
+        self._heartbeat_s = (
+            heartbeat_s if heartbeat_s is not None else min(HEARTBEAT_S, stale_after_s / 4)
+        )
         self._stale_after_s = stale_after_s
         self.name = worker_name()
         self._wake = threading.Event()

@@ -326,6 +326,9 @@ def main() -> int:
     from tests.bench.history_bench import report as history_report  # ~10 min at 10,000 units
 
     print("\n" + "\n".join(history_report()))
+    from tests.bench.save_bench import report as save_report  # seeds 2 x 10,100 units (~1 min)
+
+    ok &= save_report()
     return 0 if ok else 1
 
 
