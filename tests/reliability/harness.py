@@ -34,6 +34,8 @@ import numpy as np
 import sqlalchemy as sa
 from sqlalchemy.orm import Session, selectinload
 
+from tests.server import lines
+
 ROOT = Path(__file__).resolve().parents[2]
 # seconds of load per load test; a longer run: SENSORLEDGER_LOAD_SECONDS=60
 LOAD_SECONDS = float(os.environ.get("SENSORLEDGER_LOAD_SECONDS", "12"))
@@ -260,18 +262,8 @@ def points_of(index: int, seed: int) -> list[dict[str, float]]:
 
 
 def pot_type(name: str, **changes: Any) -> dict[str, Any]:
-    return {
-        "name": name,
-        "quantity": "angle",
-        "value_unit": "deg",
-        "reading_unit": "counts",
-        "reading_min": 0,
-        "reading_max": 1023,
-        "families": ["line"],
-        "tolerance_abs": 1.0,
-        "interval_days": 365,
-        **changes,
-    }
+    """The API tests' pot type (tests/server/lines.py) with a yearly interval."""
+    return lines.pot_type(name, **{"interval_days": 365, **changes})
 
 
 def seed_fleet(
