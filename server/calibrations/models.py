@@ -6,7 +6,7 @@ import enum
 from datetime import datetime
 from typing import TYPE_CHECKING, Any
 
-from sqlalchemy import JSON, Boolean, Enum, Float, ForeignKey, Integer, String, Text
+from sqlalchemy import JSON, Boolean, Enum, Float, ForeignKey, Index, Integer, String, Text
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 import shared
@@ -25,9 +25,14 @@ class SessionKind(enum.StrEnum):
 
 class CalibrationSession(Base):
     __tablename__ = "calibration_session"
+    # a unit's sessions newest first without a sort (its latest valid one, for every row of a
+    # unit list); it serves lookups by unit_id alone too
+    __table_args__ = (
+        Index("ix_calibration_session_unit_performed", "unit_id", "performed_at", "id"),
+    )
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    unit_id: Mapped[int] = mapped_column(ForeignKey("unit.id"), index=True)
+    unit_id: Mapped[int] = mapped_column(ForeignKey("unit.id"))
     performed_at: Mapped[datetime] = mapped_column(UTCDateTime)
     operator: Mapped[str] = mapped_column(String(64))
     reference: Mapped[str] = mapped_column(String(128))

@@ -70,6 +70,17 @@ TITLES = {
 
 
 @dataclass(frozen=True, slots=True)
+class OpenBadge:
+    """What the fleet page shows of an open flag beside its unit."""
+
+    id: int
+    kind: FlagKind
+    severity: Severity
+    acknowledged_at: datetime | None
+    message: str
+
+
+@dataclass(frozen=True, slots=True)
 class Found:
     """A condition found by a recomputation, before it is stored."""
 
@@ -692,17 +703,27 @@ def count_needing_attention(session: Session) -> int:
     return session.scalar(query) or 0
 
 
-def open_kinds_by_unit(session: Session, unit_ids: list[int]) -> dict[int, list[Flag]]:
-    """Open flags of these units, by unit id (the fleet page's badges)."""
-    out: dict[int, list[Flag]] = {}
+def open_kinds_by_unit(session: Session, unit_ids: list[int]) -> dict[int, list[OpenBadge]]:
+    """Open flags of these units, by unit id (the fleet page's badges): only the columns a badge
+    shows, as rows, not whole flags."""
+    out: dict[int, list[OpenBadge]] = {}
     if not unit_ids:
         return out
-    for flag in session.scalars(
-        select(Flag)
+    for row in session.execute(
+        select(
+            Flag.unit_id,
+            Flag.id,
+            Flag.kind,
+            Flag.severity,
+            Flag.acknowledged_at,
+            Flag.message,
+        )
         .where(Flag.unit_id.in_(unit_ids), Flag.open.is_(True))
         .order_by(Flag.kind, Flag.id)
     ):
-        out.setdefault(flag.unit_id, []).append(flag)
+        out.setdefault(row.unit_id, []).append(
+            OpenBadge(row.id, row.kind, row.severity, row.acknowledged_at, row.message)
+        )
     return out
 
 

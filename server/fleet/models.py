@@ -6,7 +6,7 @@ import enum
 from datetime import date, datetime
 from typing import TYPE_CHECKING, Any
 
-from sqlalchemy import JSON, Enum, Float, ForeignKey, Integer, String, Text
+from sqlalchemy import JSON, Enum, Float, ForeignKey, Index, Integer, String, Text
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from server.db import Base, UTCDateTime, utcnow
@@ -63,10 +63,13 @@ class SensorType(Base):
 
 class Unit(Base):
     __tablename__ = "unit"
+    # a type's units in serial order without a sort (type pages, the fleet list filtered by
+    # type); it serves lookups by sensor_type_id alone too
+    __table_args__ = (Index("ix_unit_type_serial", "sensor_type_id", "serial"),)
 
     id: Mapped[int] = mapped_column(primary_key=True)
     serial: Mapped[str] = mapped_column(String(64), unique=True)
-    sensor_type_id: Mapped[int] = mapped_column(ForeignKey("sensor_type.id"), index=True)
+    sensor_type_id: Mapped[int] = mapped_column(ForeignKey("sensor_type.id"))
     status: Mapped[UnitStatus] = mapped_column(
         Enum(UnitStatus, native_enum=False, length=16, validate_strings=True),
         default=UnitStatus.in_stock,

@@ -323,7 +323,9 @@ def _row(session: Session, found: Row[Any]) -> UnitRow:
         unit = session.get(Unit, unit_id)
         if unit is not None:
             fields["due_on"], fields["due_basis"] = _stored_or_computed(unit)
-    return UnitRow(id=unit_id, read=UnitRead(**fields))
+    # the columns are typed (enum, UTC datetimes, booleans) by their SQLAlchemy types already:
+    # building the model without validating it again halves the cost of a page of rows
+    return UnitRow(id=unit_id, read=UnitRead.model_construct(**fields))
 
 
 def get_unit_read(session: Session, serial: str) -> UnitRead:
