@@ -9,6 +9,7 @@ from typing import Any
 
 import pytest
 
+from server import idempotency
 from tests.server.lines import line_points, pot_type
 
 TYPE = "Pot 200"
@@ -119,4 +120,28 @@ def test_retries_at_the_same_moment_store_one_session(client, technician, unit):
         answers = list(pool.map(lambda _: post(client, technician, "burst", body()), range(6)))
     assert [a.status_code for a in answers] == [201] * 6, [a.text for a in answers]
     assert len({a.json()["id"] for a in answers}) == 1
+    assert stored(client, technician) == 1
+
+
+@pytest.mark.parametrize("hidden", [1, 2], ids=["seen-after-the-lock", "seen-at-the-insert"])
+def test_two_requests_with_one_key_at_once(client, technician, unit, monkeypatch, hidden: int):
+    """The same race replayed deterministically: the second request looked before the first
+    committed (``hidden`` look-ups miss the stored answer). It sees the answer once it holds the
+    unit, or at the latest when its own insert of the key collides (PostgreSQL raised there, a
+    500, before the fix); either way it replays."""
+    first = post(client, technician, "k-3", body())
+    assert first.status_code == 201
+    real = idempotency.find
+    calls = {"n": 0}
+
+    def late(*args: Any, **kwargs: Any) -> Any:
+        calls["n"] += 1
+        return None if calls["n"] <= hidden else real(*args, **kwargs)
+
+    monkeypatch.setattr(idempotency, "find", late)
+    second = post(client, technician, "k-3", body())
+    assert second.status_code == 201, second.text
+    assert second.headers["Idempotency-Replayed"] == "true"
+    assert second.json()["id"] == first.json()["id"]
+    assert calls["n"] == hidden + 1
     assert stored(client, technician) == 1
