@@ -24,9 +24,17 @@ compare(previous, current)
     at once, and it has no single nu when the two fits have different dof. The draws use a fixed
     seed inside the function, so a comparison is reproducible.
 
+    The simulated quantile is floored at z_{(1 + level) / 2} (``pointwise_floor``), a proven lower
+    bound of the true one, so simulation error never puts it below.
+
     A drift flag needs both: the deviation beyond the drift limit somewhere on the common range,
     and the difference significant by the simultaneous test. Without a drift limit, ``drifted``
     is the significance alone (said so in ``rule``).
+
+could_drift(previous, current, ...)
+    The same grid without the simulation: False when the deviation stays within the drift limit
+    or max |d| / sd is at most that floor, i.e. when ``compare`` is certain to say "not drifted".
+    Flag recomputation asks it first; most units of a fleet never reach the simulation.
 
 en_number, satisfactory
     ISO/IEC 17043 normalised error with expanded uncertainties, and |En| <= 1 judged with a tiny
@@ -45,11 +53,12 @@ from typing import overload
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from scipy import special
 
 from shared.acceptance import describe_tolerance
 from shared.errors import BadInput, OutOfRange
 from shared.families.base import Array
-from shared.fitting import Fit
+from shared.fitting import Fit, Interval
 from shared.uncertainty import K_CONVENTION
 
 DEFAULT_POINTS = 201  # grid of readings over the common valid range
@@ -238,6 +247,56 @@ def simultaneous_critical(
     return float(np.quantile(stat, level))
 
 
+def pointwise_floor(level: float = DEFAULT_LEVEL) -> float:
+    """A lower bound of the simultaneous critical value: the two-sided normal quantile
+    z_{(1 + level) / 2} (1.96 at 95 %).
+
+    Why. The maximum over the grid is at least |d(r)| / sd(r) at any one reading, and there that
+    ratio is a standard normal divided by sqrt(s), s the per-draw variance scale with E[s] = 1
+    (1 for absolute covariances). Its tail P(|ratio| > c) = E[2 (1 - Phi(c sqrt(s)))], and
+    s -> 1 - Phi(c sqrt(s)) is convex for c > 0 (second derivative
+    c phi(c sqrt s) (c^2 s + 1) / (4 s^(3/2)) > 0), so by Jensen's inequality the tail is at
+    least 2 (1 - Phi(c)): the level quantile of the maximum is at least z_{(1 + level) / 2}.
+    """
+    return float(special.ndtri(0.5 + 0.5 * level))
+
+
+def _difference(
+    previous: Fit, current: Fit, points: int
+) -> tuple[Array, Interval, Interval, Array, Array, Array]:
+    """The grid over the common valid range, both curves' bands on it, the deviation
+    current - previous, its standard uncertainty and |d| / sd (``compare``, ``could_drift``)."""
+    lo, hi = common_range(previous, current)
+    grid = np.linspace(lo, hi, points)
+    band_p = previous.curve_band(grid, level=None)  # U = k u, k = 2 (uncertainty of constants)
+    band_c = current.curve_band(grid, level=None)
+    deviation = np.asarray(band_c.value - band_p.value, dtype=float)
+    sd = np.sqrt(band_p.u**2 + band_c.u**2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = np.where(sd > 0, np.abs(deviation) / sd, np.where(deviation == 0, 0.0, np.inf))
+    return grid, band_p, band_c, deviation, sd, z
+
+
+def could_drift(
+    previous: Fit,
+    current: Fit,
+    *,
+    drift_limit: float | None = None,
+    points: int = DEFAULT_POINTS,
+    level: float = DEFAULT_LEVEL,
+) -> bool:
+    """False only when ``compare(previous, current, ...)`` with the same arguments is certain
+    to say "not drifted", found without its simulation (a few per cent of its cost): the
+    deviation stays within the drift limit, or max |d| / sd is at most ``pointwise_floor``,
+    below which no critical value lies. True means "compare to know". Raises as ``compare``."""
+    if points < 2:
+        raise BadInput(f"the grid needs at least 2 readings, got {points}")
+    _, _, _, deviation, _, z = _difference(previous, current, points)
+    if drift_limit is not None and not bool(np.max(np.abs(deviation)) > drift_limit):
+        return False
+    return bool(np.max(z) > pointwise_floor(level))
+
+
 def compare(
     previous: Fit,
     current: Fit,
@@ -266,15 +325,13 @@ def compare(
         raise BadInput(f"the drift limit must be a finite number >= 0, got {drift_limit}")
     if points < 2:
         raise BadInput(f"the grid needs at least 2 readings, got {points}")
-    lo, hi = common_range(previous, current)
-    grid = np.linspace(lo, hi, points)
-    band_p = previous.curve_band(grid, level=None)  # U = k u, k = 2 (uncertainty of constants)
-    band_c = current.curve_band(grid, level=None)
-    deviation = np.asarray(band_c.value - band_p.value, dtype=float)
-    sd = np.sqrt(band_p.u**2 + band_c.u**2)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        z = np.where(sd > 0, np.abs(deviation) / sd, np.where(deviation == 0, 0.0, np.inf))
-    critical = simultaneous_critical(previous, current, grid, level=level, draws=draws)
+    grid, band_p, band_c, deviation, sd, z = _difference(previous, current, points)
+    # floored at the one-point quantile, a proven lower bound (see ``pointwise_floor``): the
+    # floor only removes simulation error, and ``could_drift`` relies on it
+    critical = max(
+        simultaneous_critical(previous, current, grid, level=level, draws=draws),
+        pointwise_floor(level),
+    )
 
     i = int(np.argmax(np.abs(deviation)))
     big_u = np.hypot(band_p.k * band_p.u[i], band_c.k * band_c.u[i])
@@ -305,7 +362,7 @@ def compare(
             f"{test}."
         )
     return DriftResult(
-        common_range=(lo, hi),
+        common_range=(float(grid[0]), float(grid[-1])),
         max_deviation=float(deviation[i]),
         at_reading=float(grid[i]),
         at_value=float(band_c.value[i]),

@@ -24,7 +24,9 @@ from shared.drift import (
     EN_REL_EPS,
     as_found,
     compare,
+    could_drift,
     en_number,
+    pointwise_floor,
     satisfactory,
     simultaneous_critical,
 )
@@ -271,6 +273,43 @@ def test_simulated_drift_sensitivity_and_false_alarms(figures) -> None:
     assert naive_any > significant
     assert naive_at_max > significant
     assert significant <= 0.05 + 3 * np.sqrt(0.05 * 0.95 / len(steady))
+
+
+def test_pointwise_floor_is_the_two_sided_normal_quantile() -> None:
+    # NIST/SEMATECH e-Handbook 1.3.6.7.1 (normal table): z = 1.96 leaves 2.5 % in each tail;
+    # 1.959964 to more digits (scipy.stats.norm.ppf, the reference library)
+    assert pointwise_floor(0.95) == pytest.approx(1.96, abs=5e-5)
+    assert pointwise_floor(0.95) == pytest.approx(stats.norm.ppf(0.975), rel=1e-12)
+    assert pointwise_floor(0.99) == pytest.approx(stats.norm.ppf(0.995), rel=1e-12)
+
+
+@pytest.mark.parametrize("limit", [DRIFT_LIMIT, None], ids=["with-limit", "no-limit"])
+def test_could_drift_never_misses_a_drift_compare_finds(limit: float | None, figures) -> None:
+    """``could_drift`` is a shortcut: False must mean compare says "not drifted", on the
+    simulated fleet (drifted and steady units, fixed seed), and it must skip most steady units
+    (else it saves nothing)."""
+    units = simulate()
+    skipped = drifted_skipped = 0
+    for u in units:
+        quick = could_drift(u.fit_1, u.fit_2, drift_limit=limit)
+        full = compare(u.fit_1, u.fit_2, drift_limit=limit)
+        assert full.critical >= pointwise_floor(full.level)
+        if not quick:
+            skipped += 1
+            assert not full.drifted, u.serial
+            drifted_skipped += u.kind == "drifted"
+    steady = sum(u.kind != "drifted" for u in units)
+    figures(
+        f"\ndrift shortcut ({'limit' if limit else 'no limit'}): {skipped} of {len(units)} "
+        f"units told without the simulation ({steady} steady)"
+    )
+    # with a limit nearly every steady unit stays within it; without one, a steady unit's
+    # largest |d| / sd passes 1.96 somewhere on the curve about a quarter of the time (the
+    # "naive anywhere" rate above), and those are left to the simulation
+    assert skipped >= (0.9 if limit is not None else 0.6) * steady
+    # with a limit, a drifted unit (5 % of span against a 2 % limit) is never skipped
+    if limit is not None:
+        assert drifted_skipped == 0
 
 
 def test_near_the_noise_the_limit_alone_would_flag_steady_units(figures) -> None:
