@@ -1,13 +1,16 @@
 """SIGKILL of the server in the middle of work (SQLite and PostgreSQL): the database stays sound,
 every session is wholly there or wholly absent, nothing acknowledged is lost, and a job the
 server was running is taken back after restart and finished (or failed with the old fits kept).
-
-A history import killed half-way (``sensorledger import-history``) gets its test here, beside
-these two, with the same checks; it is not written yet.
+A history import (``sensorledger import-history``, a process of its own) killed half-way keeps
+the batches it committed, each whole; running the same file again stores the rest once.
 """
 
 from __future__ import annotations
 
+import csv
+import signal
+import subprocess
+import sys
 import threading
 import time
 from collections.abc import Callable
@@ -18,6 +21,9 @@ import pytest
 import sqlalchemy as sa
 
 from tests.reliability.harness import (
+    READINGS,
+    ROOT,
+    T0,
     Client,
     Load,
     Server,
@@ -28,10 +34,12 @@ from tests.reliability.harness import (
     current_fit_ids,
     database,
     integrity_ok,
+    points_of,
     pot_type,
     run_load,
     seed_fleet,
     servers,
+    stored_sessions,
     wait_for_fleet,
 )
 
@@ -174,4 +182,82 @@ def test_sigkill_in_the_middle_of_saves(
         f"SIGKILL during saves ({'PostgreSQL' if 'postgresql' in db_url else 'SQLite'}): "
         f"{len(acked)} acknowledged, {stored} stored whole (the rest were cut before their "
         f"answer), none half-written; all there after restart"
+    )
+
+
+HISTORY_UNITS = 200  # x 3 sessions = 600 sessions: two batches of 300 (history.BATCH)
+HISTORY_SESSIONS = 3
+HISTORY_WAIT_S = 300.0
+
+
+def _history_file(path: Path, type_name: str) -> set[tuple[str, object]]:
+    """A history CSV of HISTORY_UNITS new units with HISTORY_SESSIONS sessions each; the
+    (serial, performed_at) of every session."""
+    sessions: set[tuple[str, object]] = set()
+    with path.open("w", newline="", encoding="utf-8") as handle:
+        out = csv.writer(handle)
+        columns = "serial,sensor_type,performed_at,operator,reference,reference_value,reading"
+        out.writerow(columns.split(","))
+        for i in range(HISTORY_UNITS):
+            serial = f"HIS-{i:04d}"
+            for k in range(HISTORY_SESSIONS):
+                when = T0.replace(year=T0.year - HISTORY_SESSIONS + k)
+                sessions.add((serial, when))
+                for p in points_of(i, 50_000 + 10 * i + k):
+                    row = [serial, type_name, when.isoformat(), "archive", "angle jig"]
+                    out.writerow([*row, p["reference_value"], p["reading"]])
+    return sessions
+
+
+def _import(url: str, path: Path, log: Path) -> subprocess.Popen[bytes]:
+    command = [sys.executable, "-m", "server.cli", "import-history", str(path), "--db", url]
+    with log.open("ab") as out:
+        return subprocess.Popen(command, cwd=ROOT, stdout=out, stderr=subprocess.STDOUT)
+
+
+def _stored_count(url: str) -> int:
+    from server.calibrations.models import CalibrationSession
+
+    with database(url) as s:
+        return s.scalar(sa.select(sa.func.count()).select_from(CalibrationSession)) or 0
+
+
+def test_sigkill_in_the_middle_of_a_history_import(
+    db_url: str, logs: Path, tmp_path: Path, figures: Callable[[str], None]
+) -> None:
+    fleet = seed_fleet(db_url, n_units=0)
+    path = tmp_path / "history.csv"
+    expected = _history_file(path, fleet.type_name)
+    log = logs / "import-history.log"
+
+    first = _import(db_url, path, log)
+    deadline = time.monotonic() + HISTORY_WAIT_S
+    try:
+        while _stored_count(db_url) == 0:  # the first batch is committed
+            assert first.poll() is None, log.read_text()[-2000:]
+            assert time.monotonic() < deadline, "the import stored nothing in time"
+            time.sleep(0.05)
+    finally:
+        first.send_signal(signal.SIGKILL)
+        first.wait()
+    integrity_ok(db_url)
+    with database(db_url) as s:
+        before = stored_sessions(s)
+        whole = check_sessions_whole(s, READINGS.size)
+    assert 0 < len(before) < len(expected), "the import was not killed half-way"
+    assert set(before) <= expected and max(before.values()) == 1
+    assert len(before) % 300 == 0, f"{len(before)} sessions: a batch was not stored whole"
+
+    again = _import(db_url, path, log)
+    assert again.wait(HISTORY_WAIT_S) == 0, log.read_text()[-2000:]
+    integrity_ok(db_url)
+    with database(db_url) as s:
+        after = stored_sessions(s)
+        check_sessions_whole(s, READINGS.size)
+    assert set(after) == expected and set(after.values()) == {1}
+    assert "already present" in log.read_text() or len(before) == 0
+    figures(
+        f"SIGKILL during a history import ({'PostgreSQL' if 'postgresql' in db_url else 'SQLite'}"
+        f"): killed with {len(before)} of {len(expected)} sessions stored ({whole} whole, batches "
+        f"of 300); the second run stored the other {len(expected) - len(before)}, each once"
     )
