@@ -3,10 +3,8 @@
 - ``test_load.py``: 16 writers and 4 page readers against one server (SQLite, PostgreSQL) and
   against two servers sharing one PostgreSQL database.
 - ``test_kills.py``: SIGKILL of the server in the middle of a refit job and in the middle of a
-  stream of saves.
-- A SIGKILL in the middle of a history import (``sensorledger import-history``) belongs in
-  ``test_kills.py`` beside them, with the same checks (``harness.integrity_ok``,
-  ``check_sessions_whole``, ``current_fit_ids``); it is not written yet.
+  stream of saves, and of ``sensorledger import-history`` half-way through a file; the checks
+  are in ``checks.py`` (``integrity_ok``, ``check_sessions_whole``, ``current_fit_ids``, ...).
 
 Every test is marked ``reliability`` (``pytest -m reliability``); ``make test`` runs them with
 ``SENSORLEDGER_LOAD_SECONDS`` of load per load test (default in ``harness.LOAD_SECONDS``; set 60

@@ -20,28 +20,20 @@ from urllib.parse import quote
 import pytest
 import sqlalchemy as sa
 
-from tests.reliability.harness import (
-    READINGS,
-    ROOT,
-    T0,
-    Client,
-    Load,
-    Server,
-    bearer,
+from tests.reliability.checks import (
     check_acknowledged,
     check_fleet_flags,
     check_sessions_whole,
     current_fit_ids,
     database,
     integrity_ok,
-    points_of,
-    pot_type,
-    run_load,
-    seed_fleet,
-    servers,
     stored_sessions,
     wait_for_fleet,
 )
+from tests.reliability.fleet import points_of, pot_type, seed_fleet
+from tests.reliability.harness import READINGS, ROOT, T0
+from tests.reliability.load import Load, run_load
+from tests.reliability.processes import Client, Server, bearer, servers
 
 pytestmark = pytest.mark.reliability
 RESTART_ENV = {"SENSORLEDGER_JOB_STALE_AFTER_S": "2"}  # a dead server's job is taken back fast

@@ -12,10 +12,7 @@ from pathlib import Path
 import pytest
 
 from tests.conftest import fresh_pg_database
-from tests.reliability.harness import (
-    LOAD_SECONDS,
-    Load,
-    Server,
+from tests.reliability.checks import (
     check_acknowledged,
     check_fleet_flags,
     check_jobs_ran_once,
@@ -23,11 +20,12 @@ from tests.reliability.harness import (
     current_fit_ids,
     database,
     integrity_ok,
-    run_load,
-    seed_fleet,
-    servers,
     wait_for_fleet,
 )
+from tests.reliability.fleet import seed_fleet
+from tests.reliability.harness import LOAD_SECONDS
+from tests.reliability.load import Load, run_load
+from tests.reliability.processes import Server, servers
 
 pytestmark = pytest.mark.reliability
 N_UNITS = 40
