@@ -32,6 +32,7 @@ from server.htmx import WEB
 from server.jobs.models import JobKind
 from server.jobs.runner import JobRunner
 from server.migrate import upgrade
+from server.standards import routes as standard_routes
 
 SWEEP_EVERY_S = 3600.0  # how often units that time alone made overdue get their flag
 PLOTLY_JS = Path(plotly.__file__).parent / "package_data" / "plotly.min.js"
@@ -102,6 +103,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         export_routes,
         flag_routes,
         audit_routes,
+        standard_routes,
         account_pages,
         fleet_pages,
         type_pages,
