@@ -32,6 +32,7 @@ from server.htmx import WEB
 from server.jobs.models import JobKind
 from server.jobs.runner import JobRunner
 from server.migrate import upgrade
+from server.standards import pages as standard_pages
 from server.standards import routes as standard_routes
 
 SWEEP_EVERY_S = 3600.0  # how often units that time alone made overdue get their flag
@@ -112,6 +113,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         calibrate_pages,
         export_pages,
         flag_pages,
+        standard_pages,
     ):
         app.include_router(module.router)
     return app
