@@ -6,13 +6,26 @@ from __future__ import annotations
 from datetime import date, datetime
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    field_validator,
+    model_validator,
+)
 
 Name = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=64)]
 ShortText = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=16)]
 Text128 = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=128)]
 
 Standing = Literal["ok", "due_soon", "overdue", "suspect"]
+
+
+def _no_slash(name: str) -> str:
+    if "/" in name:
+        raise ValueError("a standard's name cannot contain '/' (it is part of its address)")
+    return name
 
 
 class StandardCreate(BaseModel):
@@ -32,6 +45,8 @@ class StandardCreate(BaseModel):
     certificate: Text128 = Field(description="the certificate's number or reference")
     calibrated_on: date = Field(description="date of the certificate's calibration")
     due_on: date = Field(description="date the standard is due for its next calibration")
+
+    _name_has_no_slash = field_validator("name")(_no_slash)
 
     @model_validator(mode="after")
     def _due_after_calibrated(self) -> StandardCreate:

@@ -150,6 +150,7 @@ def test_bad_registrations_are_refused_by_field(client, technician, viewer):
         ({"expanded_u": -1}, "expanded_u"),
         ({"k": 0}, "k"),
         ({"name": ""}, "name"),
+        ({"name": "RAIL/2"}, "name"),
         ({"due_on": "2026-13-01"}, "due_on"),
     ):
         r = client.post(
