@@ -94,10 +94,9 @@ class CheckForm:
 def _invalid(exc: ValidationError) -> Invalid:
     """The first problem of a form checked by a schema, naming its field."""
     first = exc.errors()[0]
-    field = ".".join(str(p) for p in first["loc"]) or None
+    field = ".".join(str(p) for p in first["loc"])
     message = str(first["msg"]).removeprefix("Value error, ")
-    label = (field or "form").replace("_", " ")
-    return Invalid(f"{label}: {message}", field=field or "due_on")
+    return Invalid(f"{field.replace('_', ' ')}: {message}", field=field)
 
 
 def _can_edit(user: Any) -> bool:
@@ -273,7 +272,7 @@ def record_check(
 ) -> Response:
     """Record a check of the standard; back to its page (with how many units a failed check
     flagged), or the form to fix (422)."""
-    standard = service.get_standard(session, name)
+    standard = service.get_standard(session, name, lock="update")
     form = CheckForm(checked_on=checked_on, in_tolerance=in_tolerance, note=note, due_on=due_on)
     try:
         if in_tolerance not in ("yes", "no"):

@@ -63,7 +63,7 @@ def create_check(
     """Record a check (recalibration) of the standard (technician). Out of tolerance: every
     unit whose current calibration used it since its last in-tolerance check gets an open
     ``reference_suspect`` flag; an in-tolerance check clears none."""
-    standard = service.get_standard(session, name)
+    standard = service.get_standard(session, name, lock="update")
     check, flagged = suspect.check_standard(session, standard, data, user.name)
     session.commit()
     return CheckResultRead(

@@ -11,8 +11,8 @@ from pydantic import (
     ConfigDict,
     Field,
     StringConstraints,
+    ValidationInfo,
     field_validator,
-    model_validator,
 )
 
 Name = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=64)]
@@ -48,11 +48,13 @@ class StandardCreate(BaseModel):
 
     _name_has_no_slash = field_validator("name")(_no_slash)
 
-    @model_validator(mode="after")
-    def _due_after_calibrated(self) -> StandardCreate:
-        if self.due_on <= self.calibrated_on:
-            raise ValueError("due_on must be later than calibrated_on")
-        return self
+    @field_validator("due_on")
+    @classmethod
+    def _due_after_calibrated(cls, due_on: date, info: ValidationInfo) -> date:
+        calibrated_on = info.data.get("calibrated_on")
+        if calibrated_on is not None and due_on <= calibrated_on:
+            raise ValueError(f"must be later than calibrated_on ({calibrated_on.isoformat()})")
+        return due_on
 
 
 class CheckCreate(BaseModel):

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
-from typing import Any
+from typing import Any, Literal
 
 from sqlalchemy import Select, and_, func, select
 from sqlalchemy.orm import Session, aliased, selectinload
@@ -94,18 +94,27 @@ def last_good_on(standard: ReferenceStandard, before: date, exclude: int | None 
 # -- create, find, list ----------------------------------------------------------------------------
 
 
-def find_standard(session: Session, name: str) -> ReferenceStandard | None:
-    """By name, ignoring case and surrounding blanks (a scanner's input)."""
-    return session.scalar(
-        select(ReferenceStandard)
-        .where(func.lower(ReferenceStandard.name) == name.strip().lower())
-        .options(selectinload(ReferenceStandard.checks))
+Lock = Literal["share", "update"] | None
+
+
+def find_standard(session: Session, name: str, *, lock: Lock = None) -> ReferenceStandard | None:
+    """By name, ignoring case and surrounding blanks (a scanner's input). ``lock`` (PostgreSQL;
+    SQLite's writers are one at a time anyway): ``share`` for a session naming it, ``update``
+    for a check, so a check and a save against the standard never interleave (a save committed
+    while a failed check looked for the units at risk would be missed by it)."""
+    query = select(ReferenceStandard).where(
+        func.lower(ReferenceStandard.name) == name.strip().lower()
     )
+    if lock is not None:
+        query = query.with_for_update(read=lock == "share")
+    return session.scalar(query.options(selectinload(ReferenceStandard.checks)))
 
 
-def get_standard(session: Session, name: str, *, field: str | None = None) -> ReferenceStandard:
+def get_standard(
+    session: Session, name: str, *, field: str | None = None, lock: Lock = None
+) -> ReferenceStandard:
     """The standard, or NotFound (Invalid naming ``field`` when a request body named it)."""
-    found = find_standard(session, name)
+    found = find_standard(session, name, lock=lock)
     if found is None:
         message = f"no reference standard {name.strip()[:80]!r} in the register"
         if field is not None:
@@ -405,7 +414,7 @@ def resolve_for_session(
     """The standard a session names, checked against the rest of the body: a free-text
     reference other than its name, a U or k other than the register's, or a standard stated in
     another unit than the sensor type's values is refused (Invalid naming the field)."""
-    standard = get_standard(session, name, field="reference_standard")
+    standard = get_standard(session, name, field="reference_standard", lock="share")
     if reference is not None and reference.strip().lower() != standard.name.lower():
         raise Invalid(
             f"reference {reference!r} differs from reference_standard {standard.name!r}: name "
