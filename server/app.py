@@ -32,6 +32,8 @@ from server.htmx import WEB
 from server.jobs.models import JobKind
 from server.jobs.runner import JobRunner
 from server.migrate import upgrade
+from server.standards import pages as standard_pages
+from server.standards import routes as standard_routes
 
 SWEEP_EVERY_S = 3600.0  # how often units that time alone made overdue get their flag
 PLOTLY_JS = Path(plotly.__file__).parent / "package_data" / "plotly.min.js"
@@ -102,6 +104,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         export_routes,
         flag_routes,
         audit_routes,
+        standard_routes,
         account_pages,
         fleet_pages,
         type_pages,
@@ -110,6 +113,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         calibrate_pages,
         export_pages,
         flag_pages,
+        standard_pages,
     ):
         app.include_router(module.router)
     return app

@@ -25,8 +25,10 @@ Sensor types (three boxes of rangefinders, two of potentiometers, two of load ce
 In all three the scatter is in the reading (ADC or bridge noise; the jig, the indexing head and
 the dead weights are far finer), so each type has ``noise_in="reading"`` and a reading resolution
 (one count; the load cell's logged digit, 0.00001 mV/V). Every session records its reference
-standard's expanded uncertainty (k = 2, from invented certificates): it enters the uncertainty
-budget and the test-uncertainty ratio.
+standard by name from the register (``server.standards.demo``: invented certificates, U with
+k = 2): it enters the uncertainty budget and the test-uncertainty ratio. The dead-weight set
+DW-20 is found out of tolerance at the end of the story: the load cells calibrated against it
+since its last good check are flagged.
 
 Units later features must find (also in ``DemoSummary``):
 
@@ -68,6 +70,7 @@ from server.flags.service import recompute_flags
 from server.fleet import service as fleet
 from server.fleet.models import NoiseIn, SensorType, Unit, UnitStatus
 from server.fleet.schemas import SensorTypeCreate, UnitCreate
+from server.standards.demo import REFERENCE_OF, SUSPECT, flag_suspect, register_standards
 
 SEED = 20261120
 REFERENCE_DATE = date(2026, 11, 20)  # "today" in the demo story
@@ -130,8 +133,6 @@ RANGEFINDER = SensorTypeCreate(
 BELOW_MIN_RANGE_MM = (40, 50, 60)  # where the response folds back: excluded by the engine
 IN_RANGE_MM = (80, 90, 100, 120, 150, 200, 250, 300, 350, 400, 450, 500, 600, 700, 800)
 RANGEFINDER_JIG = BELOW_MIN_RANGE_MM + IN_RANGE_MM
-RANGEFINDER_REFERENCE = "distance jig DJ-1 (rail with stops, +-0.2 mm), white card target"
-RANGEFINDER_REFERENCE_U = 0.2  # mm, k = 2: the jig's stops (invented certificate)
 SAMPLES_PER_READING = 16
 
 
@@ -180,8 +181,6 @@ POTENTIOMETER = SensorTypeCreate(
     reading_resolution=1.0,  # counts
 )
 POT_JIG = tuple(range(0, 271, 15))  # deg on the indexing head
-POT_REFERENCE = "indexing head IH-2 with vernier (0.1 deg)"
-POT_REFERENCE_U = 0.1  # deg, k = 2 (invented certificate)
 
 
 def _pot_truth(z: Scores) -> Truth:
@@ -225,8 +224,6 @@ LOAD_CELL = SensorTypeCreate(
 )
 LOAD_KG = (0, 2, 4, 6, 8, 10, 12, 14, 16, 18, 20)
 LOAD_CELL_JIG = tuple(round(kg * GRAVITY, 5) for kg in (*LOAD_KG, *reversed(LOAD_KG)))  # up, down
-LOAD_CELL_REFERENCE = "dead-weight set DW-20 (class M1), 2 kg steps, hanger tared"
-LOAD_CELL_REFERENCE_U = 0.01  # N, k = 2: about 1 g at 20 kg (invented certificate)
 FULL_SCALE_N = 20 * GRAVITY
 
 
@@ -260,8 +257,7 @@ class Kind:
     spec: SensorTypeCreate
     prefix: str
     jig: tuple[float, ...]
-    reference: str
-    reference_u: float  # expanded uncertainty (k = 2) of the reference, value units
+    # its reference standard is server.standards.demo.REFERENCE_OF[key] (U and k from there)
     spread: tuple[str, ...]  # the constants that vary unit to unit
     truth: Callable[[Scores], Truth]
     respond: Callable[[Truth, np.ndarray, np.random.Generator], np.ndarray]
@@ -274,8 +270,6 @@ KINDS = {
         spec=RANGEFINDER,
         prefix="IR",
         jig=RANGEFINDER_JIG,
-        reference=RANGEFINDER_REFERENCE,
-        reference_u=RANGEFINDER_REFERENCE_U,
         spread=("k", "r0", "v0", "knee"),
         truth=_rangefinder_truth,
         respond=_rangefinder_respond,
@@ -286,8 +280,6 @@ KINDS = {
         spec=POTENTIOMETER,
         prefix="POT",
         jig=POT_JIG,
-        reference=POT_REFERENCE,
-        reference_u=POT_REFERENCE_U,
         spread=("travel", "offset", "bow"),
         truth=_pot_truth,
         respond=_pot_respond,
@@ -298,8 +290,6 @@ KINDS = {
         spec=LOAD_CELL,
         prefix="LC",
         jig=LOAD_CELL_JIG,
-        reference=LOAD_CELL_REFERENCE,
-        reference_u=LOAD_CELL_REFERENCE_U,
         spread=("sensitivity", "zero", "nonlinearity"),
         truth=_load_cell_truth,
         respond=_load_cell_respond,
@@ -348,6 +338,8 @@ class DemoSummary:
     quarantined_serial: str
     overdue_serial: str
     failed_serials: tuple[str, ...]  # units with at least one failed session
+    suspect_standard: str = ""  # the reference standard found out of tolerance
+    suspect_flagged: int = 0  # units it put at risk (reference_suspect flags)
 
     def describe(self) -> list[str]:
         """A few lines for a person who has just started the demo."""
@@ -359,6 +351,8 @@ class DemoSummary:
             f"    {self.odd_serial:<12} reads unlike its siblings",
             f"    {self.quarantined_serial:<12} failed its incoming calibration; quarantined",
             f"    {self.overdue_serial:<12} missed its yearly recalibration",
+            f"    {self.suspect_standard:<12} a reference standard found out of tolerance: "
+            f"{self.suspect_flagged} units to check (/standards)",
         ]
 
 
@@ -434,9 +428,7 @@ def _calibrate(
         data = CalibrationCreate(
             performed_at=_at(day, 25 * position),
             operator=OPERATORS[int(rng.integers(0, len(OPERATORS)))],
-            reference=kind.reference,
-            reference_expanded_u=kind.reference_u,
-            reference_k=2.0,
+            reference_standard=REFERENCE_OF[box.kind],  # U and k from the register
             kind=SessionKind.incoming if n == 0 else SessionKind.periodic,
             ambient=_ambient(rng),
             points=[
@@ -490,6 +482,7 @@ def load_demo(session: Session) -> DemoSummary:
     rng = np.random.default_rng(SEED)
     users = _users(session)
     sensor_types = {key: fleet.create_sensor_type(session, k.spec) for key, k in KINDS.items()}
+    register_standards(session, TECHNICIAN)
     scores = {
         key: {name: _scores(rng, sum(b.count for b in BOXES if b.kind == key)) for name in k.spread}
         for key, k in KINDS.items()
@@ -517,6 +510,7 @@ def load_demo(session: Session) -> DemoSummary:
     session.flush()
     for sensor_type in sensor_types.values():
         recompute_flags(session, sensor_type)
+    suspect_flagged = flag_suspect(session, TECHNICIAN)
     sessions = sum(len(r) for r in results.values())
     passed = sum(sum(r) for r in results.values())
     return DemoSummary(
@@ -533,4 +527,6 @@ def load_demo(session: Session) -> DemoSummary:
         quarantined_serial=QUARANTINED_SERIAL,
         overdue_serial=OVERDUE_SERIAL,
         failed_serials=tuple(serial for serial, r in results.items() if not all(r)),
+        suspect_standard=SUSPECT,
+        suspect_flagged=suspect_flagged,
     )

@@ -8,6 +8,7 @@ from server.flags.models import Flag, InstallationEvent
 from server.fleet.models import SensorType, Unit
 from server.idempotency.models import IdempotentResponse
 from server.jobs.models import Job
+from server.standards.models import ReferenceStandard, StandardCheck
 
 __all__ = [
     "AuditEntry",
@@ -19,7 +20,9 @@ __all__ = [
     "InstallationEvent",
     "Job",
     "Point",
+    "ReferenceStandard",
     "SensorType",
+    "StandardCheck",
     "Token",
     "Unit",
     "User",

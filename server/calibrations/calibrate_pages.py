@@ -16,6 +16,7 @@ import numpy as np
 from fastapi import APIRouter, Depends, File, Form, Request, UploadFile
 from fastapi.responses import HTMLResponse, Response
 from pydantic import ValidationError
+from sqlalchemy.orm import object_session
 
 import shared
 from server.accounts.deps import PageTechnician
@@ -42,6 +43,7 @@ from server.fleet.receiving import awaiting_first_calibration
 from server.fleet.service import due_on, find_unit_by_serial, get_unit
 from server.formatting import residual_decimals
 from server.htmx import redirect, render
+from server.standards.service import all_names
 
 router = APIRouter(include_in_schema=False)
 
@@ -145,7 +147,7 @@ def calibration_of(form: CalibrationForm, points: list[PointIn]) -> CalibrationC
     try:
         return CalibrationCreate.model_validate(
             {
-                **checked.model_dump(exclude={"points"}),
+                **checked.model_dump(exclude={"points"}, exclude_unset=True),
                 "points": [p.model_dump() for p in points],
             }
         )
@@ -155,9 +157,32 @@ def calibration_of(form: CalibrationForm, points: list[PointIn]) -> CalibrationC
         raise Invalid(f"points: {message}", field="points") from None
 
 
+def _with_standard(
+    sensor_type: SensorType, form: CalibrationForm, data: CalibrationCreate
+) -> tuple[CalibrationCreate, str | None, str | None]:
+    """The previewed body with the register's U and k when the form names a standard, why that
+    standard cannot vouch for a session at the typed time (or None), and what is wrong with the
+    standard as named (reported as still needed before saving; the fit is previewed anyway)."""
+    db = object_session(sensor_type)
+    if data.reference_standard is None or db is None:
+        return data, None, None
+    try:
+        when = calibration_from_form(replace(form, points=STAND_IN_POINTS)).performed_at
+    except Invalid:
+        when = datetime.now(UTC)
+    try:
+        filled, named = service.named_standard(
+            db, sensor_type, data.model_copy(update={"reference": None, "performed_at": when})
+        )
+    except Invalid as exc:
+        return data, None, exc.message
+    return filled, named.problem if named is not None else None, None
+
+
 def preview_of(sensor_type: SensorType, form: CalibrationForm, read: Points) -> dict[str, Any]:
     """The fit of the points as saving would make it (nothing stored), judged, and drawn."""
     data = calibration_of(replace(form, **SESSION_STAND_INS), read.points)
+    data, problem, standard_error = _with_standard(sensor_type, form, data)
     outcome = service.fit_points(
         sensor_type,
         data.points,
@@ -170,9 +195,10 @@ def preview_of(sensor_type: SensorType, form: CalibrationForm, read: Points) -> 
             data.extra_label,
         ),
     )
+    outcome = service.with_standard_problem(outcome, problem)
     try:
         calibration_of(form, read.points)
-        still_needed = None
+        still_needed = standard_error
     except Invalid as exc:  # only a session field can fail now: the fit needs none of them
         still_needed = exc.message
     fit, decision = outcome.fit, outcome.decision
@@ -250,9 +276,12 @@ def page_context(
         "due": None,
         "today": datetime.now(UTC).date(),
     }
+    ctx["standard_names"] = []
     if unit is not None:
         ctx["last"] = latest_session(unit.sessions)
         ctx["due"] = due_on(unit)
+        db = object_session(unit)
+        ctx["standard_names"] = all_names(db) if db is not None else []
     if session is not None:
         ctx["awaiting"], ctx["awaiting_total"] = awaiting_first_calibration(session, AWAITING_SHOWN)
     return ctx

@@ -40,6 +40,14 @@ class CalibrationSession(Base):
     # U with its coverage factor k, and one stated extra standard uncertainty with its label
     reference_expanded_u: Mapped[float | None] = mapped_column(Float)
     reference_k: Mapped[float] = mapped_column(Float, default=2.0, server_default="2")
+    # the register's standard the session named (its U and k copied above, its name in
+    # ``reference``); None for a free-text reference. ``reference_standard_problem``: why the
+    # standard could not vouch for the session when it was performed (overdue, or found out of
+    # tolerance by its latest check), which makes the session fail, refits included
+    reference_standard_id: Mapped[int | None] = mapped_column(
+        ForeignKey("reference_standard.id"), index=True
+    )
+    reference_standard_problem: Mapped[str | None] = mapped_column(Text)
     extra_u: Mapped[float | None] = mapped_column(Float)
     extra_label: Mapped[str | None] = mapped_column(String(128))
     kind: Mapped[SessionKind] = mapped_column(

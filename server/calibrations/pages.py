@@ -42,6 +42,7 @@ from server.fleet.service import (
 )
 from server.formatting import residual_decimals
 from server.htmx import redirect, render
+from server.standards.service import all_names
 
 router = APIRouter(include_in_schema=False)
 
@@ -77,6 +78,7 @@ class CalibrationForm:
     reference: str
     kind: str
     family: str = ""
+    reference_standard: str = ""  # a standard of the register, picked or scanned
     ambient: str = ""
     notes: str = ""
     points: str = ""
@@ -92,6 +94,16 @@ def blank_form(unit: Unit, user: User) -> CalibrationForm:
     """Now (UTC), the signed-in user, and the reference (with its U and k) used last time on this
     unit; the family left to the ranking."""
     last = max(unit.sessions, key=lambda s: (s.performed_at, s.id), default=None)
+    if last is not None and last.reference_standard_id is not None:
+        # a standard of the register: its name; U and k come from the register when saving
+        return CalibrationForm(
+            performed_at=datetime.now(UTC).strftime(DATETIME_LOCAL),
+            operator=user.name,
+            reference="",
+            reference_standard=last.reference,
+            kind=SessionKind.periodic.value,
+            family="",
+        )
     return CalibrationForm(
         performed_at=datetime.now(UTC).strftime(DATETIME_LOCAL),
         operator=user.name,
@@ -195,8 +207,12 @@ def calibration_from_form(form: CalibrationForm) -> CalibrationCreate:
     performed_at = _performed_at(form.performed_at)
     if not form.operator.strip():
         raise Invalid("who did the calibration? give the operator", field="operator")
-    if not form.reference.strip():
-        raise Invalid("name the reference instrument or jig used", field="reference")
+    standard = form.reference_standard.strip() or None
+    if standard is None and not form.reference.strip():
+        raise Invalid(
+            "name the reference instrument or jig used, or pick a standard of the register",
+            field="reference",
+        )
     if form.kind not in SessionKind.__members__:
         raise Invalid(f"unknown kind {form.kind!r}", field="kind")
     reference_expanded_u = _optional_number(
@@ -209,13 +225,19 @@ def calibration_from_form(form: CalibrationForm) -> CalibrationCreate:
         return CalibrationCreate(
             performed_at=performed_at,
             operator=form.operator,
-            reference=form.reference,
+            reference=form.reference.strip() or None,
+            reference_standard=standard,
             kind=SessionKind(form.kind),
             family=form.family or None,
             ambient=form.ambient.strip() or None,
             notes=form.notes.strip() or None,
             reference_expanded_u=reference_expanded_u,
-            reference_k=2.0 if reference_k is None else reference_k,
+            # with a standard of the register, k is its own unless a U is typed beside it
+            **(
+                {"reference_k": 2.0 if reference_k is None else reference_k}
+                if standard is None or reference_expanded_u is not None
+                else {}
+            ),
             extra_u=extra_u,
             extra_label=form.extra_label.strip() or None,
             points=points,
@@ -299,6 +321,7 @@ def unit_context(
     ctx["status_error"] = None
     db = object_session(unit)
     ctx["changes"] = audit.entries_of_unit(db, unit.serial) if db is not None else []
+    ctx["standard_names"] = all_names(db) if db is not None else []
     ctx.update(drift_context(unit))
     ctx.update(unit_panels(unit))
     ctx["just_saved"] = next((h for h in history if h["record"].id == saved), None)
@@ -510,6 +533,7 @@ def form_fields(
     performed_at: Annotated[str, Form()] = "",
     operator: Annotated[str, Form()] = "",
     reference: Annotated[str, Form()] = "",
+    reference_standard: Annotated[str, Form()] = "",
     kind: Annotated[str, Form()] = "",
     family: Annotated[str, Form()] = "",
     ambient: Annotated[str, Form()] = "",
@@ -525,6 +549,7 @@ def form_fields(
         performed_at=performed_at,
         operator=operator,
         reference=reference,
+        reference_standard=reference_standard,
         kind=kind,
         family=family,
         ambient=ambient,

@@ -33,7 +33,7 @@ import shared
 from server.audit import service as audit
 from server.calibrations.models import CalibrationSession, FitRecord
 from server.calibrations.schemas import JobRead, PointIn, RefitProblemRead
-from server.calibrations.service import Outcome, fit_points, type_b_of
+from server.calibrations.service import Outcome, fit_points, type_b_of, with_standard_problem
 from server.errors import DomainError
 from server.fleet.models import SensorType, Unit
 from server.fleet.service import TypeChange
@@ -179,7 +179,10 @@ def refit_session(record: CalibrationSession, sensor_type: SensorType) -> Outcom
         record.extra_u,
         record.extra_label,
     )
-    return fit_points(sensor_type, points, _requested_family(record, sensor_type), inputs)
+    return with_standard_problem(
+        fit_points(sensor_type, points, _requested_family(record, sensor_type), inputs),
+        record.reference_standard_problem,
+    )
 
 
 @dataclass(frozen=True, slots=True)

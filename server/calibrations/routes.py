@@ -142,7 +142,10 @@ def create_calibration_from_csv(
     ],
     performed_at: Annotated[datetime, Form()],
     operator: Annotated[str, Form()],
-    reference: Annotated[str, Form()],
+    reference: Annotated[str | None, Form(description="free text; or reference_standard")] = None,
+    reference_standard: Annotated[
+        str | None, Form(description="a standard of the register, instead of reference")
+    ] = None,
     kind: Annotated[SessionKind, Form()] = SessionKind.periodic,
     family: Annotated[str | None, Form()] = None,
     ambient: Annotated[str | None, Form()] = None,
@@ -150,7 +153,7 @@ def create_calibration_from_csv(
     reference_expanded_u: Annotated[
         float | None, Form(description="U of the reference standard, value units")
     ] = None,
-    reference_k: Annotated[float, Form(description="coverage factor of that U")] = 2.0,
+    reference_k: Annotated[float | None, Form(description="coverage factor of that U")] = None,
     extra_u: Annotated[
         float | None, Form(description="one more standard uncertainty, value units")
     ] = None,
@@ -164,13 +167,14 @@ def create_calibration_from_csv(
         data = CalibrationCreate(
             performed_at=performed_at,
             operator=operator,
-            reference=reference,
+            reference=reference or None,
+            reference_standard=reference_standard or None,
             kind=kind,
             family=family or None,
             ambient=ambient,
             notes=notes,
             reference_expanded_u=reference_expanded_u,
-            reference_k=reference_k,
+            **({"reference_k": reference_k} if reference_k is not None else {}),
             extra_u=extra_u,
             extra_label=extra_label,
             points=points,

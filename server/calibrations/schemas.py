@@ -38,7 +38,18 @@ class CalibrationCreate(BaseModel):
 
     performed_at: AwareDatetime
     operator: Text64
-    reference: Text128 = Field(description="the reference instrument or jig used")
+    reference: Text128 | None = Field(
+        None,
+        description="the reference instrument or jig used, as free text (labs without a "
+        "register); give this or reference_standard",
+    )
+    reference_standard: Text64 | None = Field(
+        None,
+        validate_default=True,
+        description="the name of a standard of the register (instead of reference): its U and "
+        "k are used; a session performed after its due date, or after a check found it out of "
+        "tolerance, is stored but does not pass",
+    )
     kind: SessionKind = SessionKind.periodic
     family: str | None = Field(
         None,
@@ -69,6 +80,18 @@ class CalibrationCreate(BaseModel):
         description="what extra_u is, e.g. 'target alignment'; needed with extra_u",
     )
     points: list[PointIn] = Field(min_length=2, max_length=100_000)
+
+    @field_validator("reference_standard")
+    @classmethod
+    def _a_reference_is_named(cls, name: str | None, info: ValidationInfo) -> str | None:
+        if "reference" not in info.data:  # reference itself was invalid; that error is reported
+            return name
+        if name is None and info.data["reference"] is None:
+            raise ValueError(
+                "say what the unit was calibrated against: reference_standard (a standard of "
+                "the register) or reference (free text)"
+            )
+        return name
 
     @field_validator("extra_label")
     @classmethod
@@ -236,6 +259,12 @@ class CalibrationRead(BaseModel):
     performed_at: datetime
     operator: str
     reference: str
+    reference_standard: str | None = Field(
+        None, description="the register's standard named by the session (its name is reference)"
+    )
+    reference_standard_problem: str | None = Field(
+        None, description="why that standard could not vouch for the session (it then fails)"
+    )
     reference_expanded_u: float | None
     reference_k: float
     extra_u: float | None

@@ -45,6 +45,7 @@ from server.db import utcnow
 from server.errors import Conflict, Invalid, NotFound
 from server.fleet.models import NoiseIn, SensorType, Unit
 from server.fleet.service import due_on
+from server.standards.service import Named, resolve_for_session
 from shared.budget import TypeB, budget
 from shared.diagnostics import lack_of_fit, suspect_points
 from shared.fitting import Noise
@@ -219,20 +220,65 @@ def repeat_indices(values: list[float]) -> list[int]:
     return out
 
 
+def with_standard_problem(outcome: Outcome, problem: str | None) -> Outcome:
+    """The outcome failed for a reason of the session's reference standard (overdue, or found
+    out of tolerance before the session), the reason added to the decision's; unchanged when
+    there is none. The fit and its numbers stay as they are."""
+    if problem is None:
+        return outcome
+    d = outcome.decision
+    failed = dataclasses.replace(d, passed=False, reasons=(*d.reasons, problem))
+    return dataclasses.replace(outcome, decision=failed)
+
+
+def named_standard(
+    session: Any, sensor_type: SensorType, data: CalibrationCreate
+) -> tuple[CalibrationCreate, Named | None]:
+    """The body with the register's standard filled in (its name as the reference, its U and
+    k), and the standard; the body unchanged (no standard) for a free-text reference."""
+    if data.reference_standard is None:
+        return data, None
+    named = resolve_for_session(
+        session,
+        data.reference_standard,
+        data.performed_at,
+        sensor_type.value_unit,
+        reference=data.reference,
+        given_u=data.reference_expanded_u,
+        given_k=data.reference_k if "reference_k" in data.model_fields_set else None,
+    )
+    filled = data.model_copy(
+        update={
+            "reference": named.standard.name,
+            "reference_standard": named.standard.name,
+            "reference_expanded_u": named.standard.expanded_u,
+            "reference_k": named.standard.k,
+        }
+    )
+    return filled, named
+
+
 def run_calibration(
     session: Any, unit: Unit, data: CalibrationCreate, recorded_by: str | None
 ) -> CalibrationSession:
     sensor_type = unit.sensor_type
+    data, named = named_standard(session, sensor_type, data)
+    problem = named.problem if named is not None else None
     inputs = type_b_of(
         sensor_type, data.reference_expanded_u, data.reference_k, data.extra_u, data.extra_label
     )
-    outcome = fit_points(sensor_type, data.points, data.family, inputs)
+    outcome = with_standard_problem(
+        fit_points(sensor_type, data.points, data.family, inputs), problem
+    )
     result, decision = outcome.fit, outcome.decision
+    assert data.reference is not None  # CalibrationCreate needs a reference or a standard
     record = CalibrationSession(
         unit=unit,
         performed_at=data.performed_at,
         operator=data.operator,
         reference=data.reference,
+        reference_standard_id=named.standard.id if named is not None else None,
+        reference_standard_problem=problem,
         reference_expanded_u=data.reference_expanded_u,
         reference_k=data.reference_k,
         extra_u=data.extra_u,
@@ -281,6 +327,7 @@ def run_calibration(
         performed_at=record.performed_at,
         operator=record.operator,
         reference=record.reference,
+        reference_standard=named.standard.name if named is not None else None,
         family=result.family,
         passed=decision.passed,
         points=len(record.points),
@@ -438,6 +485,8 @@ def calibration_read(record: CalibrationSession, reading: float | None = None) -
         performed_at=record.performed_at,
         operator=record.operator,
         reference=record.reference,
+        reference_standard=record.reference if record.reference_standard_id is not None else None,
+        reference_standard_problem=record.reference_standard_problem,
         reference_expanded_u=record.reference_expanded_u,
         reference_k=record.reference_k,
         extra_u=record.extra_u,

@@ -33,6 +33,7 @@ IMPORT_OPTIONS = {
     "performed_at": "--performed-at",
     "operator": "--operator",
     "reference": "--reference",
+    "reference_standard": "--reference-standard",
     "kind": "--kind",
     "family": "--family",
     "ambient": "--ambient",
@@ -69,12 +70,14 @@ def _import(args: argparse.Namespace) -> int:
             performed_at=args.performed_at or datetime.now(UTC),
             operator=args.operator,
             reference=args.reference,
+            reference_standard=args.reference_standard,
             kind=args.kind,
             family=args.family or None,
             ambient=args.ambient,
             notes=args.notes,
             reference_expanded_u=args.reference_u,
-            reference_k=args.reference_k,
+            # without --reference-k: 2, or the register's k with --reference-standard
+            **({"reference_k": args.reference_k} if args.reference_k is not None else {}),
             extra_u=args.extra_u,
             extra_label=args.extra_label,
             points=points,
@@ -220,11 +223,18 @@ def _configure_import(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--operator", required=True, metavar="NAME", help="who did the calibration (required)"
     )
-    parser.add_argument(
+    reference = parser.add_mutually_exclusive_group(required=True)
+    reference.add_argument(
         "--reference",
-        required=True,
         metavar="TEXT",
-        help="the reference instrument or jig used, e.g. 'distance jig DJ-2' (required)",
+        help="the reference instrument or jig used, e.g. 'distance jig DJ-2' (this or "
+        "--reference-standard is required)",
+    )
+    reference.add_argument(
+        "--reference-standard",
+        metavar="NAME",
+        help="a standard of the register, e.g. DJ-1: its U and k are used; a standard overdue "
+        "or found out of tolerance before the session makes it fail",
     )
     parser.add_argument(
         "--performed-at",
@@ -250,9 +260,8 @@ def _configure_import(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--reference-k",
         type=finite_number,
-        default=2.0,
         metavar="K",
-        help="coverage factor of that U (default 2)",
+        help="coverage factor of that U (default 2, or the register's)",
     )
     parser.add_argument(
         "--extra-u",

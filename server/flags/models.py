@@ -26,6 +26,7 @@ class FlagKind(enum.StrEnum):
     fleet_outlier = "fleet_outlier"
     failed_acceptance = "failed_acceptance"
     overdue = "overdue"
+    reference_suspect = "reference_suspect"
 
 
 class Severity(enum.StrEnum):

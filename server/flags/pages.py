@@ -30,6 +30,7 @@ from server.fleet.pages import unit_url
 from server.fleet.service import get_unit
 from server.htmx import is_partial, render
 from server.pagination import PageParams, page_params
+from server.standards.attention import attention_context
 
 router = APIRouter(include_in_schema=False)
 E = TypeVar("E", bound=Enum)
@@ -206,7 +207,11 @@ def _list_context(
 def _page_context(
     session: Session, user: User, query: AttentionQuery, replaced: dict[str, Any] | None = None
 ) -> dict[str, Any]:
-    return {**_counts_context(session, query), **_list_context(session, user, query, replaced)}
+    return {
+        **_counts_context(session, query),
+        **_list_context(session, user, query, replaced),
+        **attention_context(session),  # the register's standards due, overdue or suspect
+    }
 
 
 AttentionQueryDep = Annotated[AttentionQuery, Depends(attention_query)]

@@ -15,6 +15,8 @@ and its installation events:
 - ``overdue``: the due date (``server.fleet.service.unit_due``: the interval adjusted by the
   drift history, as on the fleet page; stored on the unit here) has passed: ``warning`` for the
   first 30 days, ``action`` after. The evidence carries the due date's basis.
+- ``reference_suspect``: raised when a reference standard fails its own check, and opened or
+  closed here by ``server.standards.suspect.refresh`` (see there).
 
 Each flag has a ``key`` naming its condition (kind, unit, and the calibrations it is about), so a
 recomputation that finds the same condition keeps the row, its ``raised_at`` and its
@@ -49,6 +51,7 @@ from server.jobs import service as jobs
 from server.jobs.models import JobKind
 from server.jobs.runner import JobContext
 from server.pagination import PageParams, paged
+from server.standards import suspect
 from shared.drift import as_found, compare, could_drift
 
 PLOT_POINTS = 41  # readings kept in a drift flag's evidence for its plot
@@ -59,6 +62,7 @@ ABBREVIATIONS = {  # the fleet page's badges
     FlagKind.fleet_outlier: "ODD",
     FlagKind.failed_acceptance: "FAIL",
     FlagKind.overdue: "DUE",
+    FlagKind.reference_suspect: "REF",
 }
 TITLES = {
     FlagKind.drift: "Drifted between calibrations",
@@ -66,6 +70,7 @@ TITLES = {
     FlagKind.fleet_outlier: "Reads unlike its siblings",
     FlagKind.failed_acceptance: "Failed acceptance",
     FlagKind.overdue: "Overdue for recalibration",
+    FlagKind.reference_suspect: "Calibrated against a suspect standard",
 }
 
 
@@ -537,7 +542,8 @@ def recompute_flags(
     existing = {
         f.key: f
         for f in session.scalars(query)
-        if f.kind is not FlagKind.fleet_outlier or f.unit_id in retired
+        if (f.kind is not FlagKind.fleet_outlier or f.unit_id in retired)
+        and f.kind is not FlagKind.reference_suspect  # kept by server.standards.suspect
     }
     # closed flags whose condition came back are opened again (their row and note are kept)
     returning = [key for key in found if key not in existing]
@@ -557,6 +563,7 @@ def recompute_flags(
         flag.open, flag.closed_at = True, None
         kept.append(flag)
     session.flush()
+    kept += suspect.refresh(session, sensor_type, only)
     if units is None:
         kept += recompute_fleet(session, sensor_type)
     else:

@@ -39,6 +39,7 @@ class FlagFilter(StrEnum):
     fleet_outlier = FlagKind.fleet_outlier.value
     failed_acceptance = FlagKind.failed_acceptance.value
     overdue = FlagKind.overdue.value
+    reference_suspect = FlagKind.reference_suspect.value
 
 
 class SensorTypeChanged(BaseModel):

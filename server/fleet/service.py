@@ -242,9 +242,12 @@ def _with_history() -> tuple[Any, ...]:
 def get_unit(session: Session, serial: str, *, lock: bool = False) -> Unit:
     """The unit with its type, sessions and fits loaded (pages that draw its history);
     ``lock``: row-locked until the transaction ends (PostgreSQL; a SQLite writer holds the
-    whole database), so two changes of one unit take turns."""
+    whole database), so two changes of one unit take turns. FOR NO KEY UPDATE: it does not
+    block the KEY SHARE lock of a row added that refers to the unit (a flag raised by a failed
+    check of a reference standard, which the save may be waiting for: see
+    tests/server/test_standard_locks.py)."""
     query = select(Unit).where(Unit.serial == serial).options(*_with_history())
-    unit = session.scalar(query.with_for_update(of=Unit) if lock else query)
+    unit = session.scalar(query.with_for_update(of=Unit, key_share=True) if lock else query)
     if unit is None:
         raise NotFound(f"unit {serial!r} not found")
     return unit

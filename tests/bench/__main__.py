@@ -329,6 +329,9 @@ def main() -> int:
     from tests.bench.save_bench import report as save_report  # seeds 2 x 10,100 units (~1 min)
 
     ok &= save_report()
+    from tests.bench.standards_bench import report as standards_report  # 1,000 units (~10 s)
+
+    ok &= standards_report()
     return 0 if ok else 1
 
 

@@ -244,7 +244,9 @@ def test_import_needs_operator_and_reference_and_an_existing_database(capsys, tm
     csv_file = write_points(tmp_path / "p.csv", ir_readings(200_000, 30, 15, seed=26))
     code, out, err = run(capsys, "import", str(csv_file), "--unit", FRESH)
     assert code == 2 and out == ""
-    assert "the following arguments are required: --operator, --reference" in err
+    assert "the following arguments are required: --operator" in err
+    code, out, err = run(capsys, "import", str(csv_file), "--unit", FRESH, "--operator", "tess")
+    assert code == 2 and "one of the arguments --reference --reference-standard is required" in err
 
     missing = tmp_path / "nowhere" / "sensorledger.db"
     code, out, err = run(
@@ -449,3 +451,45 @@ def test_backup_is_one_snapshot_while_others_write(capsys, demo_db, tmp_path, mo
         writer.close()
     assert (code, err) == (0, ""), err
     assert table_counts(tmp_path / "during.db")["user_account"] == before + len(steps)
+
+
+def test_import_against_a_standard_of_the_register(capsys, fleet_url, tmp_path) -> None:
+    """--reference-standard takes the register's U and k; another U beside it is refused,
+    naming the option, with nothing stored."""
+    from datetime import date
+
+    from server.standards import service as standards
+    from server.standards.schemas import StandardCreate
+
+    app = create_app(Settings(database_url=fleet_url))
+    with app.state.sessionmaker() as session:
+        standards.create_standard(
+            session,
+            StandardCreate(
+                name="DJ-7",
+                quantity="distance",
+                value_unit="mm",
+                expanded_u=0.25,
+                k=2.0,
+                certificate="C-7",
+                calibrated_on=date(2025, 1, 1),
+                due_on=date(2030, 1, 1),
+            ),
+        )
+        session.commit()
+    app.state.engine.dispose()
+    csv_file = write_points(tmp_path / "ir.csv", ir_readings(200_000, 30, 15, seed=27))
+    before = counts(fleet_url)
+    code, out, err = run(
+        capsys, "import", str(csv_file), "--unit", FRESH, "--operator", "tess",
+        "--reference-standard", "dj-7", "--reference-u", "0.5", "--db", fleet_url,
+    )  # fmt: skip
+    assert code == 2 and out == "" and err.startswith("error: --reference-u: "), err
+    assert counts(fleet_url) == before
+    code, out, err = run(
+        capsys, "import", str(csv_file), "--unit", FRESH, "--operator", "tess",
+        "--reference-standard", "dj-7", "--db", fleet_url,
+    )  # fmt: skip
+    assert (code, err) == (0, ""), err
+    [stored] = sessions_of(fleet_url, FRESH)
+    assert (stored["reference"], stored["reference_expanded_u"]) == ("DJ-7", 0.25)

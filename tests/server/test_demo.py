@@ -274,3 +274,37 @@ def test_the_demo_raises_the_flags_its_story_promises(demo: Demo) -> None:
     assert [p["location"] for p in oot.evidence["installations"]] == ["kit 02 / left bumper"]
     failed = {s for s, k, _, _ in found if k == "failed_acceptance"}
     assert QUARANTINED_SERIAL in failed and NOISY_SERIAL in failed
+
+
+def test_the_demo_register_and_its_suspect_standard(demo: Demo) -> None:
+    """Every session names its type's standard of the register; DW-20, found out of tolerance at
+    the end of the story, flags exactly the load cells whose current calibration is on or after
+    its last good check (2025-11-03), each with where it is installed."""
+    from datetime import date
+
+    from server.flags.models import Flag, FlagKind
+    from server.standards.models import ReferenceStandard
+
+    names = {s.name for s in demo.session.scalars(select(ReferenceStandard))}
+    assert {"DJ-1", "IH-2", "DW-20", "TH-5"} <= names
+    for unit in demo.units():
+        for s in unit.sessions:
+            assert s.reference_standard_id is not None and s.reference in names, unit.serial
+    load_cell = next(t for t in demo.types() if t.quantity == "force")
+    expected = {
+        u.serial
+        for u in demo.units(load_cell.name)
+        if max(s.performed_at for s in u.sessions).date() >= date(2025, 11, 3)
+    }
+    flags = list(
+        demo.session.scalars(
+            select(Flag)
+            .options(selectinload(Flag.unit))
+            .where(Flag.kind == FlagKind.reference_suspect, Flag.open.is_(True))
+        )
+    )
+    assert {f.unit.serial for f in flags} == expected and len(expected) >= 5
+    assert demo.summary.suspect_flagged == len(expected)
+    assert all(f.evidence["standard"] == "DW-20" for f in flags)
+    installed = [f for f in flags if f.unit.installed_in]
+    assert installed and all(f.evidence["installed_in"] == f.unit.installed_in for f in installed)
