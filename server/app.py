@@ -7,11 +7,12 @@ from contextlib import asynccontextmanager
 from pathlib import Path
 
 import plotly
-from fastapi import FastAPI
+from fastapi import Depends, FastAPI
 from fastapi.responses import FileResponse
 from fastapi.staticfiles import StaticFiles
 
 from server import errors
+from server.accounts import csrf
 from server.accounts import pages as account_pages
 from server.audit import routes as audit_routes
 from server.calibrations import calibrate_pages, refits
@@ -78,6 +79,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         summary="Calibration records, fitting and hand-off for a fleet of sensors",
         version="0.1.0",
         lifespan=lifespan,
+        dependencies=[Depends(csrf.check)],  # every route, pages added later too
     )
     app.state.settings = settings
     app.state.engine = engine
@@ -85,6 +87,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.read_sessionmaker = read_factory
     app.state.jobs = jobs
     errors.install(app)
+    csrf.install(app)
 
     @app.get("/static/vendor/plotly.min.js", include_in_schema=False)
     def plotly_js() -> FileResponse:

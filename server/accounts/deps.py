@@ -7,12 +7,12 @@ from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
 from server.accounts import service
+from server.accounts.csrf import COOKIE
 from server.accounts.models import Role, TokenKind, User
 from server.db import SessionDep
 from server.errors import NotSignedIn
 from server.flags.service import count_needing_attention
 
-COOKIE = "sensorledger_signin"
 bearer = HTTPBearer(auto_error=False, description="A token from `sensorledger token create`")
 
 

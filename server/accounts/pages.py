@@ -9,7 +9,7 @@ from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from server.accounts import service
-from server.accounts.deps import COOKIE
+from server.accounts.csrf import COOKIE
 from server.db import SessionDep
 from server.errors import NotSignedIn
 from server.htmx import render
