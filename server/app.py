@@ -11,7 +11,7 @@ from fastapi import Depends, FastAPI
 from fastapi.responses import FileResponse
 from fastapi.staticfiles import StaticFiles
 
-from server import errors
+from server import api_docs, errors
 from server.accounts import csrf
 from server.accounts import pages as account_pages
 from server.audit import routes as audit_routes
@@ -79,6 +79,8 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         summary="Calibration records, fitting and hand-off for a fleet of sensors",
         version="0.1.0",
         lifespan=lifespan,
+        docs_url=None,  # served by server/api_docs.py from vendored files
+        redoc_url=None,
         dependencies=[Depends(csrf.check)],  # every route, pages added later too
     )
     app.state.settings = settings
@@ -88,6 +90,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.jobs = jobs
     errors.install(app)
     csrf.install(app)
+    api_docs.install(app)
 
     @app.get("/static/vendor/plotly.min.js", include_in_schema=False)
     def plotly_js() -> FileResponse:
