@@ -46,6 +46,16 @@ class Forbidden(DomainError):
     status_code = 403
 
 
+class TooManyTries(DomainError):
+    """429: wait ``retry_after`` seconds (sent as Retry-After) before trying again."""
+
+    status_code = 429
+
+    def __init__(self, message: str, *, retry_after: int, field: str | None = None) -> None:
+        super().__init__(message, field=field)
+        self.retry_after = retry_after
+
+
 def _is_api(request: Request) -> bool:
     return request.url.path.startswith("/api/")
 
@@ -65,8 +75,10 @@ def install(app: FastAPI) -> None:
     async def on_domain_error(request: Request, exc: DomainError) -> Response:
         if isinstance(exc, NotSignedIn) and not _is_api(request):
             return redirect(request, f"/signin?next={quote(page_path(request), safe='/')}")
+        headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else {}
+        if isinstance(exc, TooManyTries):
+            headers["Retry-After"] = str(exc.retry_after)
         if _is_api(request):
-            headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else None
             return JSONResponse(
                 {"detail": exc.message, "field": exc.field}, exc.status_code, headers=headers
             )
@@ -75,6 +87,7 @@ def install(app: FastAPI) -> None:
             "errors/page.html",
             block="problem",
             status_code=exc.status_code,
+            headers=headers,
             message=exc.message,
         )
 

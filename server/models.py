@@ -1,6 +1,6 @@
 """Every ORM model, imported once so that Base.metadata is complete (Alembic, tests)."""
 
-from server.accounts.models import Token, User
+from server.accounts.models import SigninThrottle, Token, User
 from server.audit.models import AuditEntry
 from server.calibrations.models import CalibrationSession, FitRecord, Point
 from server.db import Base
@@ -20,6 +20,7 @@ __all__ = [
     "Job",
     "Point",
     "SensorType",
+    "SigninThrottle",
     "Token",
     "Unit",
     "User",
