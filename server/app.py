@@ -12,7 +12,7 @@ from fastapi.responses import FileResponse
 from fastapi.staticfiles import StaticFiles
 
 from server import api_docs, errors
-from server.accounts import csrf
+from server.accounts import admin_pages, csrf
 from server.accounts import pages as account_pages
 from server.audit import routes as audit_routes
 from server.calibrations import calibrate_pages, refits
@@ -109,6 +109,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         flag_routes,
         audit_routes,
         account_pages,
+        admin_pages,
         fleet_pages,
         type_pages,
         receive_pages,

@@ -46,7 +46,9 @@ def page_user(request: Request, session: SessionDep, background: BackgroundTasks
     raw = request.cookies.get(COOKIE)
     if not raw:
         raise NotSignedIn("please sign in")
-    user = _used(request, background, service.token_for(session, raw, TokenKind.browser))
+    token = service.token_for(session, raw, TokenKind.browser)
+    user = _used(request, background, token)
+    request.state.token_id = token.id  # e.g. kept when an admin changes their own password
     request.state.user = user
     request.state.attention_count = count_needing_attention(session)
     return user
