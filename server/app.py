@@ -81,6 +81,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         lifespan=lifespan,
         docs_url=None,  # served by server/api_docs.py from vendored files
         redoc_url=None,
+        responses=errors.PROBLEMS,
         dependencies=[Depends(csrf.check)],  # every route, pages added later too
     )
     app.state.settings = settings

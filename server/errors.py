@@ -8,11 +8,34 @@ from urllib.parse import quote
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, Response
+from pydantic import BaseModel
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 log = logging.getLogger("sensorledger")
 BUSY_RETRY_AFTER_S = 2
+
+
+class FieldProblem(BaseModel):
+    field: str
+    message: str
+
+
+class Problem(BaseModel):
+    """Every error of the API: what is wrong, the input at fault if one is, and for an invalid
+    request every field's problem."""
+
+    detail: str
+    field: str | None = None
+    errors: list[FieldProblem] | None = None
+
+
+# Declared on every API operation (instead of FastAPI's own 422 shape, which we never send)
+PROBLEMS: dict[int | str, dict[str, object]] = {
+    401: {"model": Problem, "description": "No usable token (missing, unknown, expired, revoked)"},
+    403: {"model": Problem, "description": "The token's user lacks the role"},
+    422: {"model": Problem, "description": "A field or the request cannot be accepted"},
+}
 
 
 class DomainError(Exception):

@@ -16,7 +16,7 @@ from sqlalchemy.orm import Session
 from server.accounts import people, throttle
 from server.accounts.deps import PageAdmin
 from server.accounts.models import Role, ThrottleKind
-from server.db import SessionDep, utcnow
+from server.db import RowId, SessionDep, utcnow
 from server.errors import DomainError, Invalid
 from server.htmx import redirect, render
 
@@ -135,7 +135,7 @@ def enable_user(request: Request, session: SessionDep, admin: PageAdmin, name: s
 
 @router.post("/admin/tokens/{token_id}/revoke")
 def revoke_token(
-    request: Request, session: SessionDep, admin: PageAdmin, token_id: int
+    request: Request, session: SessionDep, admin: PageAdmin, token_id: RowId
 ) -> Response:
     return _change(
         request, session, "revoked", str(token_id),
