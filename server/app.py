@@ -7,11 +7,12 @@ from contextlib import asynccontextmanager
 from pathlib import Path
 
 import plotly
-from fastapi import FastAPI
+from fastapi import Depends, FastAPI
 from fastapi.responses import FileResponse
 from fastapi.staticfiles import StaticFiles
 
-from server import errors
+from server import api_docs, errors
+from server.accounts import admin_pages, csrf
 from server.accounts import pages as account_pages
 from server.audit import routes as audit_routes
 from server.calibrations import calibrate_pages, refits
@@ -80,6 +81,10 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         summary="Calibration records, fitting and hand-off for a fleet of sensors",
         version="0.1.0",
         lifespan=lifespan,
+        docs_url=None,  # served by server/api_docs.py from vendored files
+        redoc_url=None,
+        responses=errors.PROBLEMS,
+        dependencies=[Depends(csrf.check)],  # every route, pages added later too
     )
     app.state.settings = settings
     app.state.engine = engine
@@ -87,6 +92,8 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.read_sessionmaker = read_factory
     app.state.jobs = jobs
     errors.install(app)
+    csrf.install(app)
+    api_docs.install(app)
 
     @app.get("/static/vendor/plotly.min.js", include_in_schema=False)
     def plotly_js() -> FileResponse:
@@ -106,6 +113,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         audit_routes,
         standard_routes,
         account_pages,
+        admin_pages,
         fleet_pages,
         type_pages,
         receive_pages,

@@ -13,6 +13,7 @@ from typing import Annotated, Any
 
 import numpy as np
 from fastapi import Depends, Request
+from fastapi import Path as PathParam
 from sqlalchemy import Connection, DateTime, Engine, MetaData, create_engine, event
 from sqlalchemy.engine import Dialect, make_url
 from sqlalchemy.orm import DeclarativeBase, Session, sessionmaker
@@ -209,3 +210,6 @@ def get_session(request: Request) -> Iterator[Session]:
 
 
 SessionDep = Annotated[Session, Depends(get_session)]
+
+ID_MAX = 2**31 - 1  # PostgreSQL's integer; a larger id in a URL is a 422, never a 500
+RowId = Annotated[int, PathParam(ge=1, le=ID_MAX)]  # an id in a path: /jobs/{job_id}

@@ -8,11 +8,34 @@ from urllib.parse import quote
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, Response
+from pydantic import BaseModel
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 log = logging.getLogger("sensorledger")
 BUSY_RETRY_AFTER_S = 2
+
+
+class FieldProblem(BaseModel):
+    field: str
+    message: str
+
+
+class Problem(BaseModel):
+    """Every error of the API: what is wrong, the input at fault if one is, and for an invalid
+    request every field's problem."""
+
+    detail: str
+    field: str | None = None
+    errors: list[FieldProblem] | None = None
+
+
+# Declared on every API operation (instead of FastAPI's own 422 shape, which we never send)
+PROBLEMS: dict[int | str, dict[str, object]] = {
+    401: {"model": Problem, "description": "No usable token (missing, unknown, expired, revoked)"},
+    403: {"model": Problem, "description": "The token's user lacks the role"},
+    422: {"model": Problem, "description": "A field or the request cannot be accepted"},
+}
 
 
 class DomainError(Exception):
@@ -46,6 +69,16 @@ class Forbidden(DomainError):
     status_code = 403
 
 
+class TooManyTries(DomainError):
+    """429: wait ``retry_after`` seconds (sent as Retry-After) before trying again."""
+
+    status_code = 429
+
+    def __init__(self, message: str, *, retry_after: int, field: str | None = None) -> None:
+        super().__init__(message, field=field)
+        self.retry_after = retry_after
+
+
 def _is_api(request: Request) -> bool:
     return request.url.path.startswith("/api/")
 
@@ -65,8 +98,10 @@ def install(app: FastAPI) -> None:
     async def on_domain_error(request: Request, exc: DomainError) -> Response:
         if isinstance(exc, NotSignedIn) and not _is_api(request):
             return redirect(request, f"/signin?next={quote(page_path(request), safe='/')}")
+        headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else {}
+        if isinstance(exc, TooManyTries):
+            headers["Retry-After"] = str(exc.retry_after)
         if _is_api(request):
-            headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else None
             return JSONResponse(
                 {"detail": exc.message, "field": exc.field}, exc.status_code, headers=headers
             )
@@ -75,6 +110,7 @@ def install(app: FastAPI) -> None:
             "errors/page.html",
             block="problem",
             status_code=exc.status_code,
+            headers=headers,
             message=exc.message,
         )
 

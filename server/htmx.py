@@ -11,6 +11,7 @@ from fastapi import Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from jinja2 import Environment, FileSystemLoader, StrictUndefined, select_autoescape
 
+from server.accounts.csrf import csrf_input, csrf_token
 from server.formatting import FILTERS
 
 WEB = Path(__file__).resolve().parent.parent / "web"
@@ -24,6 +25,8 @@ env = Environment(
 )
 env.filters["tojson_compact"] = lambda v: json.dumps(v, separators=(",", ":"))
 env.filters.update(FILTERS)
+# every POST form carries {{ csrf_input() }}; base.html gives htmx the token
+env.globals.update(csrf_input=csrf_input, csrf_token=csrf_token)
 
 
 def is_partial(request: Request) -> bool:

@@ -1,6 +1,6 @@
 """Every ORM model, imported once so that Base.metadata is complete (Alembic, tests)."""
 
-from server.accounts.models import Token, User
+from server.accounts.models import SigninThrottle, Token, User
 from server.audit.models import AuditEntry
 from server.calibrations.models import CalibrationSession, FitRecord, Point
 from server.db import Base
@@ -22,6 +22,7 @@ __all__ = [
     "Point",
     "ReferenceStandard",
     "SensorType",
+    "SigninThrottle",
     "StandardCheck",
     "Token",
     "Unit",

@@ -9,9 +9,9 @@ from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from server.accounts import service
-from server.accounts.deps import COOKIE
+from server.accounts.csrf import COOKIE
 from server.db import SessionDep
-from server.errors import NotSignedIn
+from server.errors import NotSignedIn, TooManyTries
 from server.htmx import render
 
 router = APIRouter(include_in_schema=False)
@@ -50,14 +50,20 @@ def signin(
     password: Annotated[str, Form()],
     next: Annotated[str, Form()] = "/",
 ) -> Response:
+    address = request.client.host if request.client else "unknown"
     try:
-        raw = service.sign_in(session, name, password, request.app.state.settings.session_days)
-    except NotSignedIn as exc:
+        raw = service.sign_in(
+            session, name, password, request.app.state.settings.session_days, address
+        )
+    except (NotSignedIn, TooManyTries) as exc:
+        session.commit()  # the failure counts (server.accounts.throttle)
+        headers = {"Retry-After": str(exc.retry_after)} if isinstance(exc, TooManyTries) else None
         return render(
             request,
             "accounts/signin.html",
             block="form",
-            status_code=401,
+            status_code=exc.status_code,
+            headers=headers,
             user=None,
             next=_safe_next(next),
             error=exc.message,

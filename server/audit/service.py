@@ -4,9 +4,11 @@ describe (so a change rolled back leaves no entry) and are never updated or dele
 Actions: ``calibration.saved``, ``calibration.voided``, ``calibration.refitted``,
 ``unit.registered``, ``unit.updated``, ``unit.installed``, ``unit.removed``,
 ``sensor_type.created``, ``sensor_type.updated``, ``refit.started``, ``refit.finished``,
-``flag.acknowledged``, ``history.imported``, ``standard.registered``, ``standard.checked``.
-Services flush, never commit (the history import, which commits per batch, adds its entries
-with its rows: ``entry_of``).
+``flag.acknowledged``, ``history.imported``, ``standard.registered``, ``standard.checked``,
+``user.created``, ``user.role_changed``, ``user.password_changed``, ``user.disabled``,
+``user.enabled``, ``token.created``, ``token.revoked``, ``signin.unlocked``
+(server/accounts/people.py). Services flush, never commit (the history import, which commits
+per batch, adds its entries with its rows: ``entry_of``).
 """
 
 from __future__ import annotations

@@ -21,7 +21,7 @@ from server.audit import service as audit
 from server.calibrations import charts, service
 from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import CalibrationCreate, DecisionRead, PointIn
-from server.db import SessionDep
+from server.db import RowId, SessionDep
 from server.errors import Conflict, Invalid
 from server.exports.service import default_step, header_problem
 from server.flags import fleet
@@ -475,7 +475,7 @@ def unit_page(
 def void_calibration(
     request: Request,
     serial: str,
-    session_id: int,
+    session_id: RowId,
     session: SessionDep,
     user: PageTechnician,
     reason: Annotated[str, Form()] = "",

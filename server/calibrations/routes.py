@@ -29,7 +29,7 @@ from server.calibrations.schemas import (
     HistoryProblemRead,
     VoidCreate,
 )
-from server.db import SessionDep
+from server.db import RowId, SessionDep
 from server.errors import Invalid
 from server.flags.schemas import FlagRead
 from server.flags.service import flag_read, flags_of, recompute_flags
@@ -213,7 +213,7 @@ def list_calibrations(
 @router.get("/units/{serial}/calibrations/{session_id}")
 def get_calibration(
     serial: str,
-    session_id: int,
+    session_id: RowId,
     session: SessionDep,
     user: ApiViewer,
     reading: BudgetReading = None,
@@ -226,7 +226,7 @@ def get_calibration(
 
 @router.post("/units/{serial}/calibrations/{session_id}/void")
 def void_calibration(
-    serial: str, session_id: int, data: VoidCreate, session: SessionDep, user: ApiTechnician
+    serial: str, session_id: RowId, data: VoidCreate, session: SessionDep, user: ApiTechnician
 ) -> CalibrationRead:
     """Void a mistaken calibration with a reason: it is kept (and shown struck out) but no longer
     counts; the unit's flags, due date and current calibration follow."""

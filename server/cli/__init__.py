@@ -1,6 +1,6 @@
-"""The `sensorledger` command: serve the app, upgrade the database, add users, create API tokens,
+"""The `sensorledger` command: serve the app, upgrade the database, manage users and API tokens,
 import a file of points as a calibration or a whole history, export a unit's calibration, back up
-the database, fit a file of points offline.
+the database and restore it, fit a file of points offline.
 
 Every command but ``fit`` takes ``--db PATH|URL`` (a SQLite file or a SQLAlchemy URL); without it
 the database is ``$SENSORLEDGER_DATABASE_URL``, else the SQLite file ``./data/sensorledger.db``.
@@ -42,6 +42,24 @@ from server.cli.exports import _configure_export, _export
 from server.cli.fitting import _configure_fit, _fit
 from server.cli.history import _configure_import_history, _import_history
 from server.cli.imports import _configure_import, _import
+from server.cli.people import (
+    _configure_token_list,
+    _configure_token_revoke,
+    _configure_user_list,
+    _configure_user_name,
+    _configure_user_passwd,
+    _configure_user_role,
+    _configure_user_unlock,
+    _token_list,
+    _token_revoke,
+    _user_disable,
+    _user_enable,
+    _user_list,
+    _user_passwd,
+    _user_role,
+    _user_unlock,
+)
+from server.cli.restore import _configure_restore, _restore
 from server.cli.serve import _configure_serve, _serve
 
 __all__ = ["COMMANDS", "KINDS", "ROLES", "Command", "build_parser", "main"]
@@ -82,10 +100,55 @@ COMMANDS = (
         _user_add,
     ),
     Command(
+        ("user", "list"),
+        "list users: role, status, tokens, last seen, failed sign-ins",
+        _configure_user_list,
+        _user_list,
+    ),
+    Command(
+        ("user", "passwd"),
+        "set a user's password (their browser sign-ins end)",
+        _configure_user_passwd,
+        _user_passwd,
+    ),
+    Command(
+        ("user", "role"),
+        "change a user's role: viewer, technician or admin",
+        _configure_user_role,
+        _user_role,
+    ),
+    Command(
+        ("user", "disable"),
+        "stop a user signing in; their tokens and sign-ins end now",
+        _configure_user_name,
+        _user_disable,
+    ),
+    Command(
+        ("user", "enable"), "let a disabled user sign in again", _configure_user_name, _user_enable
+    ),
+    Command(
+        ("user", "unlock"),
+        "clear the failed sign-ins of a user name (or an --address)",
+        _configure_user_unlock,
+        _user_unlock,
+    ),
+    Command(
         ("token", "create"),
         "create an API token for a user; printed once, on the last line",
         _configure_token_create,
         _token_create,
+    ),
+    Command(
+        ("token", "list"),
+        "list tokens: label, created, last used, expiry, state",
+        _configure_token_list,
+        _token_list,
+    ),
+    Command(
+        ("token", "revoke"),
+        "revoke tokens by id (see token list)",
+        _configure_token_revoke,
+        _token_revoke,
     ),
     Command(
         ("import",),
@@ -112,6 +175,12 @@ COMMANDS = (
         _backup,
     ),
     Command(
+        ("restore",),
+        "restore a backup file into an empty database (SQLite or PostgreSQL)",
+        _configure_restore,
+        _restore,
+    ),
+    Command(
         ("fit",),
         "fit points from a CSV file and report (offline: no database, no server)",
         _configure_fit,
@@ -126,8 +195,11 @@ EPILOG = """examples:
   sensorledger import-history history.csv --report rejected.csv
   sensorledger export IR-0001 --format c --output ir_0001.h
   sensorledger backup backups/sensorledger-2025-06-01.db
+  sensorledger restore backups/sensorledger-2025-06-01.db --db new.db
   sensorledger user add ada --role admin        then sign in as ada
   sensorledger token create ada --label "bench PC" | tail -n1
+  sensorledger user list                        who may sign in, and who is locked out
+  sensorledger token revoke 12                  a token that left the building
 """
 
 

@@ -16,6 +16,7 @@ from server.cli.common import (
     db_hint,
     db_option,
     open_session,
+    recorded_by,
 )
 
 if TYPE_CHECKING:
@@ -54,6 +55,7 @@ def _read_password(option: str | None, name: str) -> str:
 
 
 def _user_add(args: argparse.Namespace) -> int:
+    from server.accounts import people
     from server.accounts import service as accounts
     from server.accounts.models import Role
 
@@ -62,6 +64,7 @@ def _user_add(args: argparse.Namespace) -> int:
     with open_session(args) as session:
         user = accounts.create_user(session, name, Role(args.role))
         accounts.set_password(session, user, password)
+        people.created_user(session, recorded_by(), user)
         session.commit()
         print(
             f"Created user {user.name} ({user.role.value}); they can sign in with this "
@@ -96,8 +99,9 @@ def _configure_user_add(parser: argparse.ArgumentParser) -> None:
 
 
 def _token_create(args: argparse.Namespace) -> int:
+    from server.accounts import people
     from server.accounts import service as accounts
-    from server.errors import NotFound
+    from server.errors import Conflict, NotFound
 
     label = _check_name(args.label or f"created {date.today():%Y-%m-%d}", "a token label")
     with open_session(args) as session:
@@ -109,7 +113,10 @@ def _token_create(args: argparse.Namespace) -> int:
                 f"{shlex.quote(args.name.strip())} --role technician"
                 f"{db_hint(args)}"
             ) from None
+        if user.disabled_at is not None:
+            raise Conflict(f"{user.name} is disabled; enable them first: sensorledger user enable")
         raw = accounts.create_token(session, user, label)
+        people.created_token(session, recorded_by(), user, label)
         session.commit()
         print(f'New API token "{label}" for {user.name} ({user.role.value}).')
     print("It is shown only this once (only its hash is stored): keep it somewhere safe.")

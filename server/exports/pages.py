@@ -7,7 +7,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, Response
 
 from server.accounts.deps import PageViewer
-from server.db import SessionDep
+from server.db import RowId, SessionDep
 from server.exports import service
 from server.exports.routes import LutMaxError, TableParams, download_response, table_response
 from server.fleet.pages import unit_url
@@ -43,7 +43,7 @@ def firmware_h(
 
 @router.get("/units/{serial}/calibrations/{session_id}/report")
 def report(
-    request: Request, serial: str, session_id: int, session: SessionDep, user: PageViewer
+    request: Request, serial: str, session_id: RowId, session: SessionDep, user: PageViewer
 ) -> HTMLResponse:
     """The printable report of one calibration session of this unit."""
     unit = get_unit(session, serial)

@@ -18,7 +18,7 @@ from sqlalchemy.orm import Session
 from server.accounts.deps import PageTechnician, PageViewer
 from server.accounts.models import ROLE_RANK, Role, User
 from server.calibrations.pages import blank_form, unit_context
-from server.db import SessionDep
+from server.db import RowId, SessionDep
 from server.errors import Invalid
 from server.flags import attention, service
 from server.flags.attention import Section
@@ -231,7 +231,7 @@ def attention_page(
 
 @router.get("/attention/flags/{flag_id}/chart")
 def flag_chart(
-    request: Request, flag_id: int, session: SessionDep, user: PageViewer
+    request: Request, flag_id: RowId, session: SessionDep, user: PageViewer
 ) -> HTMLResponse:
     """One flag's plot: the ``chart`` block for htmx (when its card scrolls into view), else a
     page with the flag and its plot."""
@@ -256,7 +256,7 @@ def _back(text: str) -> str:
 @router.post("/attention/flags/{flag_id}/acknowledge")
 def acknowledge(
     request: Request,
-    flag_id: int,
+    flag_id: RowId,
     session: SessionDep,
     user: PageTechnician,
     note: Annotated[str, Form()] = "",

@@ -7,7 +7,7 @@ from typing import Annotated
 from fastapi import APIRouter, Depends, Query
 
 from server.accounts.deps import ApiTechnician, ApiViewer
-from server.db import SessionDep
+from server.db import RowId, SessionDep
 from server.flags import service
 from server.flags.models import FlagKind
 from server.flags.schemas import Acknowledge, EventCreate, EventRead, FlagRead
@@ -44,7 +44,7 @@ def list_flags(
 
 @router.post("/flags/{flag_id}/acknowledge")
 def acknowledge_flag(
-    flag_id: int, data: Acknowledge, session: SessionDep, user: ApiTechnician
+    flag_id: RowId, data: Acknowledge, session: SessionDep, user: ApiTechnician
 ) -> FlagRead:
     """Acknowledge a flag with a note (technician); who and when are kept. It stays open while
     its condition holds."""

@@ -11,7 +11,7 @@ from pydantic import BaseModel, Field
 from server.accounts.deps import ApiAdmin, ApiTechnician, ApiViewer
 from server.calibrations import refits
 from server.calibrations.schemas import JobRead
-from server.db import SessionDep
+from server.db import RowId, SessionDep
 from server.flags.models import FlagKind
 from server.flags.service import recompute_flags
 from server.fleet import service
@@ -103,7 +103,7 @@ def refit_sensor_type(name: str, request: Request, session: SessionDep, user: Ap
 
 
 @router.get("/jobs/{job_id}")
-def get_job(job_id: int, session: SessionDep, user: ApiViewer) -> JobRead:
+def get_job(job_id: RowId, session: SessionDep, user: ApiViewer) -> JobRead:
     """A background job's state and progress (``done`` of ``total``)."""
     return refits.job_read(jobs.get_job(session, job_id))
 

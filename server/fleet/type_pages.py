@@ -9,7 +9,7 @@ from dataclasses import dataclass, field, replace
 from typing import Annotated, Any
 from urllib.parse import quote
 
-from fastapi import APIRouter, Depends, Form, Request
+from fastapi import APIRouter, Depends, Form, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from pydantic import ValidationError
 from sqlalchemy import func, select
@@ -21,7 +21,7 @@ from server.accounts.models import ROLE_RANK, Role, User
 from server.calibrations import refits
 from server.calibrations.charts import Axes
 from server.calibrations.models import CalibrationSession, latest_session, stored_fit
-from server.db import SessionDep
+from server.db import ID_MAX, RowId, SessionDep
 from server.errors import Conflict, Invalid
 from server.flags import fleet as fleet_comparison
 from server.flags.models import Flag, FlagKind
@@ -365,7 +365,11 @@ def _required_number(text: str, name: str, words: str) -> float:
 
 @router.get("/types/{name}")
 def type_page(
-    request: Request, name: str, session: SessionDep, user: PageViewer, job: int | None = None
+    request: Request,
+    name: str,
+    session: SessionDep,
+    user: PageViewer,
+    job: Annotated[int | None, Query(ge=1, le=ID_MAX)] = None,
 ) -> HTMLResponse:
     """One type: its fleet (curves, constants, outliers), refit jobs and settings (a form for
     admins)."""
@@ -448,7 +452,7 @@ def refit_type(request: Request, name: str, session: SessionDep, user: PageAdmin
 
 @router.get("/types/{name}/jobs/{job_id}")
 def job_status(
-    request: Request, name: str, job_id: int, session: SessionDep, user: PageViewer
+    request: Request, name: str, job_id: RowId, session: SessionDep, user: PageViewer
 ) -> HTMLResponse:
     """One job's progress: the ``job`` block for htmx polling, the type page otherwise."""
     st = service.get_sensor_type(session, name)

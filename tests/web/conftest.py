@@ -23,6 +23,7 @@ from urllib.parse import urlsplit
 import pytest
 from fastapi.testclient import TestClient
 
+from server.accounts import csrf
 from server.app import create_app
 from server.config import Settings
 from tests.conftest import missing
@@ -225,6 +226,8 @@ def signed_in_client(app, name: str, password: str) -> TestClient:
         "/signin", data={"name": name, "password": password, "next": "/"}, follow_redirects=False
     )
     assert answer.status_code == 303
+    # as htmx sends it from every page (hx-headers on <body>); tests of the token leave it out
+    client.headers[csrf.HEADER] = csrf.token_of(client.cookies[csrf.COOKIE])
     return client
 
 

@@ -97,6 +97,12 @@
   document.addEventListener("htmx:beforeRequest", hideProblem);
   document.addEventListener("htmx:responseError", (event) => {
     const xhr = event.detail.xhr;
+    if (xhr.status === 403 && xhr.getResponseHeader("X-Refused") === "csrf") {
+      showProblem("This page is out of date: you signed in again (or out) since it was loaded, " +
+        "so the server refused the request and nothing was changed. Copy what you typed, " +
+        "reload the page and send it again.");
+      return;
+    }
     showProblem("The server answered " + xhr.status + " " + (xhr.statusText || "") +
       ". Nothing was changed on this page; reload it and try again.");
   });
