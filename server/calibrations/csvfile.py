@@ -12,13 +12,16 @@ from server.errors import Invalid
 
 REQUIRED = ("reference_value", "reading")
 OPTIONAL = ("excluded", "exclude_reason")
+# written by `sensorledger capture` beside each point (its repeat statistics): read, not stored
+INFORMATIONAL = ("sd", "n", "rejected")
 TRUE = {"1", "true", "yes", "y", "x"}
 FALSE = {"", "0", "false", "no", "n"}
 MAX_BYTES = 5_000_000
 
 
 def parse_points_csv(data: bytes) -> list[PointIn]:
-    """Rows of ``reference_value,reading[,excluded,exclude_reason]``; errors name the row."""
+    """Rows of ``reference_value,reading[,excluded,exclude_reason]``; errors name the row.
+    Columns ``sd,n,rejected`` (a capture's repeat statistics) are allowed and ignored."""
     if len(data) > MAX_BYTES:
         raise Invalid(f"the file is larger than {MAX_BYTES // 1_000_000} MB", field="file")
     try:
@@ -39,10 +42,11 @@ def parse_points_csv(data: bytes) -> list[PointIn]:
             f"{', '.join(missing)} (found: {', '.join(columns) or 'nothing'})",
             field="file",
         )
-    unknown = sorted(set(columns) - set(REQUIRED) - set(OPTIONAL))
+    unknown = sorted(set(columns) - set(REQUIRED) - set(OPTIONAL) - set(INFORMATIONAL))
     if unknown:
         raise Invalid(
-            f"unknown column(s) {', '.join(unknown)}; allowed: {', '.join(REQUIRED + OPTIONAL)}",
+            f"unknown column(s) {', '.join(unknown)}; allowed: "
+            f"{', '.join(REQUIRED + OPTIONAL + INFORMATIONAL)}",
             field="file",
         )
     reader.fieldnames = columns

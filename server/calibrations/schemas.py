@@ -229,6 +229,28 @@ class CalibrationSummaryRead(BaseModel):
     fits: int = Field(description="how many fits the session has had (refits add one each)")
 
 
+class CalibrationPreviewRead(BaseModel):
+    """What saving these points would store (fit and decision), with nothing stored."""
+
+    unit: str
+    sensor_type: str
+    value_unit: str
+    reading_unit: str
+    points: int
+    family: str
+    formula: str
+    params: dict[str, float]
+    stderr: dict[str, float]
+    rse: float
+    dof: int
+    valid_range: tuple[float, float]
+    monotone: bool
+    excluded: list[str] = Field(description="points the fit left out, with the reason")
+    decision: DecisionRead
+    ranking: RankingRead
+    suspects: list[SuspectRead]
+
+
 class CalibrationRead(BaseModel):
     id: int
     unit: str

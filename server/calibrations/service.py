@@ -29,6 +29,7 @@ from server.calibrations.schemas import (
     BudgetRead,
     BudgetRowRead,
     CalibrationCreate,
+    CalibrationPreviewRead,
     CalibrationRead,
     CalibrationSummaryRead,
     CurrentCalibrationRead,
@@ -206,6 +207,39 @@ def judge(
         decision=decision,
         ranking={**ranking.to_dict(), "chosen": chosen.label, "chosen_because": because},
         diagnostics=diagnostics_of(result),
+    )
+
+
+def preview_read(unit: Unit, data: CalibrationCreate) -> CalibrationPreviewRead:
+    """``fit_points`` of a session's points for the API's preview; nothing is stored."""
+    sensor_type = unit.sensor_type
+    outcome = fit_points(
+        sensor_type,
+        data.points,
+        data.family,
+        type_b_of(
+            sensor_type, data.reference_expanded_u, data.reference_k, data.extra_u, data.extra_label
+        ),
+    )
+    result = outcome.fit
+    return CalibrationPreviewRead(
+        unit=unit.serial,
+        sensor_type=sensor_type.name,
+        value_unit=sensor_type.value_unit,
+        reading_unit=sensor_type.reading_unit,
+        points=len(data.points),
+        family=result.family,
+        formula=shared.get_family(result.family).formula,
+        params=dict(result.params),
+        stderr=result.stderr,
+        rse=result.rse,
+        dof=result.dof,
+        valid_range=result.valid_range,
+        monotone=result.monotone,
+        excluded=[f"point {i + 1}: {reason}" for i, reason in result.excluded],
+        decision=DecisionRead.model_validate(outcome.decision.to_dict()),
+        ranking=RankingRead(**outcome.ranking),
+        suspects=[SuspectRead(**s) for s in outcome.diagnostics["suspects"]],
     )
 
 
