@@ -103,4 +103,12 @@
   document.addEventListener("htmx:sendError", () => {
     showProblem("The server could not be reached. Check the connection and try again.");
   });
+  // A plot in a collapsed section loads when it is opened: htmx checks "revealed" on scroll.
+  document.addEventListener(
+    "toggle",
+    function (event) {
+      if (event.target.open) window.dispatchEvent(new Event("scroll"));
+    },
+    true
+  );
 })();
