@@ -3,7 +3,9 @@ viewport (tables reflow or scroll inside their own box, plots resize, the nav wr
 
 The pages are the app's GET routes that answer HTML (APIs, static files and downloads left
 out), so a page added later is walked too; a path parameter this test cannot fill fails it.
-Screenshots land in tests/artifacts/narrow-<width>-<page>.png."""
+The lists a technician reads (fleet, types, a unit's constants, history and budget, the flag
+counts) must also lie wholly inside the screen, not in a box scrolled sideways. Screenshots
+land in tests/artifacts/narrow-<width>-<page>.png."""
 
 from __future__ import annotations
 
@@ -94,6 +96,20 @@ OFFENDERS = """(width) => {
 }"""
 
 
+# what a technician reads on a phone must lie inside the screen, not merely inside a box that
+# scrolls sideways: the constants, the unit lists, the history, the types and the flag counts
+WHOLLY_SHOWN = {
+    "/": "table.units tbody td",
+    "/types": "table.types tbody td",
+    "/attention": "table.flag-counts td, table.flag-counts th",
+    "/units/{serial}": ".constants table td, table.history td, table.budget td",
+}
+BEYOND = """([selector, width]) => [...document.querySelectorAll(selector)]
+  .filter((el) => el.getClientRects().length && el.getBoundingClientRect().right > width + 1)
+  .map((el) => (el.getAttribute("data-label") || el.tagName) + ": " + el.textContent.trim())
+  .slice(0, 5)"""
+
+
 def _routes(routes: list[Any], prefix: str = "") -> list[Any]:
     """Routes, with those of included routers (``original_router``) flattened."""
     found = []
@@ -121,6 +137,7 @@ def test_every_page_fits_the_screen(
     page = open_page(context, guard)
     too_wide: dict[str, int] = {}
     offenders: dict[str, list[str]] = {}
+    checked: set[str] = set()
     try:
         page.goto("/signin")
         shown = page.evaluate("document.documentElement.scrollWidth")
@@ -141,7 +158,15 @@ def test_every_page_fits_the_screen(
             if shown > width:
                 too_wide[path] = shown
                 offenders[path] = page.evaluate(OFFENDERS, width)
+            selector = WHOLLY_SHOWN.get(path.replace(fleet.calibrated, "{serial}"))
+            if selector:
+                checked.add(path)
+                cut = page.evaluate(BEYOND, [selector, width])
+                if cut:
+                    offenders[path] = cut
+                    too_wide[path] = max(shown, width + 1)
         guard.check()
     finally:
         context.close()
+    assert len(checked) == len(WHOLLY_SHOWN)
     assert not too_wide, f"wider than {width} px (scrollWidth): {too_wide}; widest: {offenders}"

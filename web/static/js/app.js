@@ -23,6 +23,11 @@
         const figure = JSON.parse(el.dataset.figure);
         // data-static="yes": a printable plot (no hover, no mode bar, fixed size from the layout)
         const config = el.dataset.static === "yes" ? STATIC_CONFIG : PLOT_CONFIG;
+        // a fixed-size (printable) plot narrower than its layout on a phone: draw it to fit
+        if (el.dataset.static === "yes" && figure.layout && figure.layout.width &&
+            el.clientWidth > 0 && el.clientWidth < figure.layout.width) {
+          figure.layout.width = el.clientWidth;
+        }
         Plotly.newPlot(el, figure.data, figure.layout, config);
         el.dataset.drawn = "yes";
       } catch (err) {
