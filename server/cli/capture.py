@@ -15,6 +15,7 @@ This module is the shell (port, keyboard, screen, network); standard library onl
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import queue
@@ -294,7 +295,14 @@ def render(state: State, settings: Settings) -> Any:
     head.add_row("unit", f"{state.unit} on {state.port}")
     head.add_row("reading", "-" if state.reading is None else f"{state.reading:g}")
     c = state.collecting
-    if c is not None:
+    if c is not None and settings.count is None and settings.threshold is not None:
+        now = "" if state.spread is None else f", sd {state.spread:.3g}"
+        stability = Text(
+            f"taking samples: {len(c.samples)}{now}, until sd <= {settings.threshold:g} over "
+            f"{settings.window}",
+            style="yellow",
+        )
+    elif c is not None:
         stability = Text(f"taking samples {len(c.samples)}/{settings.needed}", style="yellow")
     elif state.spread is None:
         stability = Text("filling the window", style="dim")
@@ -532,13 +540,20 @@ def _run(args: argparse.Namespace) -> int:
     try:
         found = capture(Lines(port), keys, plan, settings, view, state, pattern)
     except KeyboardInterrupt:
-        view.close()
-        keys.stop()
-        port.close()
-        return _interrupted(args, started, state.points)
-    view.close()
-    keys.stop()
-    port.close()
+        return _interrupted(args, started, state.points, view, keys, port)
+    except OSError as exc:  # pyserial's SerialException too: the unit unplugged, the port gone
+        _close(view, keys, port)
+        kept = _keep(args, started, state.points)
+        print(
+            f"error: the port {args.port} stopped answering ({first_line(exc)}): nothing "
+            f"posted{kept}",
+            file=sys.stderr,
+        )
+        return EXIT_ENVIRONMENT
+    except BaseException:
+        _close(view, keys, port)
+        raise
+    _close(view, keys, port)
     if not found.complete:
         kept = _keep(args, started, found.points)
         print(
@@ -592,7 +607,24 @@ def _keep(args: argparse.Namespace, started: datetime, points: Sequence[PointSta
     )
 
 
-def _interrupted(args: argparse.Namespace, started: datetime, points: list[PointStats]) -> int:
+def _close(view: View, keys: Confirmations, port: Port | None) -> None:
+    """Give back the screen, the keyboard (its terminal mode) and the port, whatever happens."""
+    for step in (view.close, keys.stop, port.close if port is not None else None):
+        if step is not None:
+            with contextlib.suppress(Exception):
+                step()
+
+
+def _interrupted(
+    args: argparse.Namespace,
+    started: datetime,
+    points: list[PointStats],
+    view: View | None = None,
+    keys: Confirmations | None = None,
+    port: Port | None = None,
+) -> int:
+    if view is not None and keys is not None:
+        _close(view, keys, port)
     kept = _keep(args, started, points)
     print(f"\ninterrupted: nothing posted{kept}", file=sys.stderr)
     return EXIT_INTERRUPTED

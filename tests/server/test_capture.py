@@ -82,6 +82,8 @@ class Device:
             time.sleep(0.002)
 
     def close(self) -> None:
+        if self.stopping.is_set():
+            return
         self.stopping.set()
         self.thread.join(timeout=5)
         os.close(self.master)
@@ -467,3 +469,118 @@ def test_live_display_shows_reading_stability_and_progress() -> None:
     assert "1/3 points" in text
     assert "Place the target at 30 and press Enter" in text and "3_" in text
     assert "100.25" in text and "7 line(s) without a reading" in text
+
+
+def test_unplugged_unit_keeps_the_points_taken(device: Device, tmp_path: Path) -> None:
+    out = tmp_path / "never.csv"
+    run = Run(
+        [
+            "--port",
+            device.path,
+            "--unit",
+            SERIAL,
+            "--plan",
+            "10,30,50",
+            "--count",
+            str(COUNT),
+            "--offline",
+            str(out),
+        ],
+        tmp_path,
+    )
+    take_points(run, device, [(10, "")])
+    run.expect(r"place the target at reference 30")
+    device.close()  # the cable pulled: the port reports an error
+    code, err = run.finish()
+    assert code == 1, err
+    assert f"the port {device.path} stopped answering" in err and "nothing posted" in err
+    assert not out.exists()
+    files = list(tmp_path.glob("capture-POT-C01-*.csv"))
+    assert len(files) == 1 and [r["reference_value"] for r in read_csv(files[0])] == [10]
+
+
+def test_by_hand_on_a_terminal(device: Device, tmp_path: Path) -> None:
+    """stdin and stdout a terminal: keys read one by one (a typed value replaces the planned
+    one), rich's live display, and the terminal's mode given back at the end."""
+    import termios
+
+    master, slave = pty.openpty()
+    before = termios.tcgetattr(slave)
+    out = tmp_path / "by-hand.csv"
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "server.cli",
+            "capture",
+            "--port",
+            device.path,
+            "--unit",
+            SERIAL,
+            "--plan",
+            "10,30,50",
+            "--count",
+            str(COUNT),
+            "--offline",
+            str(out),
+        ],
+        cwd=tmp_path,
+        env={
+            **os.environ,
+            "PYTHONPATH": str(ROOT),
+            "TERM": "xterm-256color",
+            "COLUMNS": "100",
+            "LINES": "40",
+        },
+        stdin=slave,
+        stdout=slave,
+        stderr=slave,
+    )
+    screen: list[str] = []
+
+    def pump() -> None:
+        while True:
+            try:
+                chunk = os.read(master, 4096)
+            except OSError:
+                return
+            if not chunk:
+                return
+            screen.append(chunk.decode("utf-8", "replace"))
+
+    reader = threading.Thread(target=pump, daemon=True)
+    reader.start()
+
+    def wait_for(text: str) -> None:
+        deadline = time.monotonic() + WAIT_S
+        while text not in "".join(screen):
+            assert proc.poll() is None or text in "".join(screen), "".join(screen)[-3000:]
+            assert time.monotonic() < deadline, (
+                f"no {text!r} on screen:\n" + "".join(screen)[-3000:]
+            )
+            time.sleep(0.05)
+
+    try:
+        wait_for("Place the target at ")
+        wait_for("0/3 points")
+        for k, (truth, keys) in enumerate([(10, "\r"), (45, "45\r"), (50, "\r")], start=1):
+            device.move(truth)
+            time.sleep(0.1)
+            os.write(master, keys.encode())
+            wait_for(f"{k}/3 points")
+        assert proc.wait(timeout=WAIT_S) == 0, "".join(screen)[-3000:]
+        wait_for("wrote ")
+        assert "reading" in "".join(screen) and "garbage" in "".join(screen)
+        rows = read_csv(out)
+        assert [r["reference_value"] for r in rows] == [10, 45, 50]
+        for row, truth in zip(rows, (100, 450, 500), strict=True):
+            assert abs(row["reading"] - truth) <= 4 * row["sd"] / math.sqrt(row["n"])
+        after = termios.tcgetattr(slave)
+        assert after[3] & termios.ECHO and after[3] & termios.ICANON  # given back
+        assert after[3] == before[3]
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        os.close(master)
+        os.close(slave)
