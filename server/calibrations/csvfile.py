@@ -12,7 +12,8 @@ from server.errors import Invalid
 
 REQUIRED = ("reference_value", "reading")
 OPTIONAL = ("excluded", "exclude_reason")
-# written by `sensorledger capture` beside each point (its repeat statistics): read, not stored
+# written by `sensorledger capture` beside each point: the SD, count and rejected count of the
+# samples its reading is the mean of (kept with the point)
 INFORMATIONAL = ("sd", "n", "rejected")
 TRUE = {"1", "true", "yes", "y", "x"}
 FALSE = {"", "0", "false", "no", "n"}
@@ -21,7 +22,7 @@ MAX_BYTES = 5_000_000
 
 def parse_points_csv(data: bytes) -> list[PointIn]:
     """Rows of ``reference_value,reading[,excluded,exclude_reason]``; errors name the row.
-    Columns ``sd,n,rejected`` (a capture's repeat statistics) are allowed and ignored."""
+    Columns ``sd,n,rejected`` (a capture's sample statistics, each may be empty) are kept."""
     if len(data) > MAX_BYTES:
         raise Invalid(f"the file is larger than {MAX_BYTES // 1_000_000} MB", field="file")
     try:
@@ -65,6 +66,7 @@ def parse_points_csv(data: bytes) -> list[PointIn]:
                     reading=(row["reading"] or "").strip(),
                     excluded=flag in TRUE,
                     exclude_reason=(row.get("exclude_reason") or "").strip() or None,
+                    **{c: (row.get(c) or "").strip() or None for c in INFORMATIONAL},
                 )
             )
         except ValidationError as exc:

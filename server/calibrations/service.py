@@ -285,6 +285,9 @@ def run_calibration(
             repeat_index=repeats[i],
             excluded=p.excluded,
             exclude_reason=p.exclude_reason.strip() if p.excluded and p.exclude_reason else None,
+            sample_sd=p.sd,
+            sample_n=p.n,
+            sample_rejected=p.rejected,
         )
         for i, p in enumerate(data.points)
     ]
@@ -444,6 +447,9 @@ def calibration_read(record: CalibrationSession, reading: float | None = None) -
             used=bool(result.used[i]),
             excluded_reason=reasons.get(i),
             residual=float(result.residuals[i]),
+            sd=p.sample_sd,
+            n=p.sample_n,
+            rejected=p.sample_rejected,
             suspect_reason=suspect_reasons.get(i),
         )
         for i, p in enumerate(record.points)

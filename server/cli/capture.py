@@ -642,7 +642,14 @@ def _post(
         "kind": args.kind,
         "notes": notes_of(found.points, found.garbage),
         "points": [
-            {"reference_value": p.reference_value, "reading": p.reading} for p in found.points
+            {
+                "reference_value": p.reference_value,
+                "reading": p.reading,
+                "sd": p.sd,
+                "n": p.n,
+                "rejected": p.rejected,
+            }
+            for p in found.points
         ],
     }
     if args.keep:

@@ -36,7 +36,7 @@ from sqlalchemy import func, select
 from server.accounts import service as accounts
 from server.accounts.models import Role
 from server.app import create_app
-from server.calibrations.models import CalibrationSession
+from server.calibrations.models import CalibrationSession, Point
 from server.config import Settings
 from server.db import make_engine, make_sessionmaker
 from tests.server.lines import pot_type
@@ -326,9 +326,9 @@ def test_capture_posts_what_it_captured(live: Live, device: Device, tmp_path: Pa
     )
     with urllib.request.urlopen(request, timeout=30) as answer:
         doc = json.loads(answer.read())
-    assert [(p["reference_value"], p["reading"]) for p in doc["points"]] == [
-        (r["reference_value"], r["reading"]) for r in rows
-    ]
+    assert [
+        (p["reference_value"], p["reading"], p["sd"], p["n"], p["rejected"]) for p in doc["points"]
+    ] == [(r["reference_value"], r["reading"], r["sd"], r["n"], r["rejected"]) for r in rows]
     assert [p["repeat_index"] for p in doc["points"]] == [0, 0, 0, 0, 1]
     assert (doc["operator"], doc["reference"]) == ("tom", "angle jig AJ-1")
     assert "(sd, n, rejected): 10: " in doc["notes"]
@@ -375,6 +375,19 @@ def test_lost_connection_keeps_the_points_for_import(
     )
     assert imported.returncode == 0, imported.stderr
     assert live.sessions() == 1
+    engine = make_engine(live.url)
+    try:
+        with make_sessionmaker(engine)() as session:
+            stored = session.execute(
+                select(
+                    Point.reading, Point.sample_sd, Point.sample_n, Point.sample_rejected
+                ).order_by(Point.seq)
+            ).all()
+    finally:
+        engine.dispose()
+    assert [tuple(x) for x in stored] == [
+        (r["reading"], r["sd"], r["n"], r["rejected"]) for r in rows
+    ]
 
 
 def test_ctrl_c_posts_nothing(live: Live, device: Device, tmp_path: Path) -> None:

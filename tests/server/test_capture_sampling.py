@@ -148,9 +148,12 @@ def test_csv_is_read_by_the_import_format_exactly() -> None:
     rows = csv_rows(points)
     assert rows[0] == "reference_value,reading,sd,n,rejected"
     read = parse_points_csv(("\n".join(rows) + "\n").encode())
-    assert [(p.reference_value, p.reading) for p in read] == [
-        (p.reference_value, p.reading) for p in points
+    assert [(p.reference_value, p.reading, p.sd, p.n, p.rejected) for p in read] == [
+        (p.reference_value, p.reading, p.sd, p.n, p.rejected) for p in points
     ]
+    # the statistics are optional per row (a point typed by hand has none)
+    mixed = parse_points_csv(b"reference_value,reading,sd,n,rejected\n1,2,,,\n3,4,0.5,10,1\n")
+    assert [(p.sd, p.n, p.rejected) for p in mixed] == [(None, None, None), (0.5, 10, 1)]
 
 
 def test_notes_carry_the_repeat_statistics_within_the_limit() -> None:
