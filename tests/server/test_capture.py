@@ -468,7 +468,7 @@ def test_mistakes_are_named_before_the_port_is_opened(tmp_path: Path) -> None:
 def test_live_display_shows_reading_stability_and_progress() -> None:
     from rich.console import Console
 
-    from server.cli.capture import State, render
+    from server.cli.capture_terminal import State, render
     from server.cli.sampling import PointStats, Settings
 
     state = State(unit=SERIAL, port="/dev/ttyACM0", plan=[10.0, 30.0, 50.0], step=1)
