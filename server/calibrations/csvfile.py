@@ -12,13 +12,17 @@ from server.errors import Invalid
 
 REQUIRED = ("reference_value", "reading")
 OPTIONAL = ("excluded", "exclude_reason")
+# written by `sensorledger capture` beside each point: the SD, count and rejected count of the
+# samples its reading is the mean of (kept with the point)
+INFORMATIONAL = ("sd", "n", "rejected")
 TRUE = {"1", "true", "yes", "y", "x"}
 FALSE = {"", "0", "false", "no", "n"}
 MAX_BYTES = 5_000_000
 
 
 def parse_points_csv(data: bytes) -> list[PointIn]:
-    """Rows of ``reference_value,reading[,excluded,exclude_reason]``; errors name the row."""
+    """Rows of ``reference_value,reading[,excluded,exclude_reason]``; errors name the row.
+    Columns ``sd,n,rejected`` (a capture's sample statistics, each may be empty) are kept."""
     if len(data) > MAX_BYTES:
         raise Invalid(f"the file is larger than {MAX_BYTES // 1_000_000} MB", field="file")
     try:
@@ -39,10 +43,11 @@ def parse_points_csv(data: bytes) -> list[PointIn]:
             f"{', '.join(missing)} (found: {', '.join(columns) or 'nothing'})",
             field="file",
         )
-    unknown = sorted(set(columns) - set(REQUIRED) - set(OPTIONAL))
+    unknown = sorted(set(columns) - set(REQUIRED) - set(OPTIONAL) - set(INFORMATIONAL))
     if unknown:
         raise Invalid(
-            f"unknown column(s) {', '.join(unknown)}; allowed: {', '.join(REQUIRED + OPTIONAL)}",
+            f"unknown column(s) {', '.join(unknown)}; allowed: "
+            f"{', '.join(REQUIRED + OPTIONAL + INFORMATIONAL)}",
             field="file",
         )
     reader.fieldnames = columns
@@ -61,6 +66,7 @@ def parse_points_csv(data: bytes) -> list[PointIn]:
                     reading=(row["reading"] or "").strip(),
                     excluded=flag in TRUE,
                     exclude_reason=(row.get("exclude_reason") or "").strip() or None,
+                    **{c: (row.get(c) or "").strip() or None for c in INFORMATIONAL},
                 )
             )
         except ValidationError as exc:

@@ -85,6 +85,11 @@ class Point(Base):
     repeat_index: Mapped[int] = mapped_column(Integer, default=0)
     excluded: Mapped[bool] = mapped_column(Boolean, default=False)
     exclude_reason: Mapped[str | None] = mapped_column(Text)
+    # when the point is the mean of many samples (``sensorledger capture``): their SD (reading
+    # units), how many were kept and how many rejected as spikes; None for a single reading
+    sample_sd: Mapped[float | None] = mapped_column(Float)
+    sample_n: Mapped[int | None] = mapped_column(Integer)
+    sample_rejected: Mapped[int | None] = mapped_column(Integer)
 
     session: Mapped[CalibrationSession] = relationship(back_populates="points")
 

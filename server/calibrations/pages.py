@@ -409,7 +409,8 @@ def point_rows(
     suspects: Mapping[int, str],
 ) -> list[dict[str, Any]]:
     """The points table of a fit (unit page, /calibrate preview): each point with its residual,
-    whether it was used, outside the tolerance, excluded (why) or suspect (why)."""
+    whether it was used, outside the tolerance, excluded (why) or suspect (why), and the
+    statistics of the samples its reading averages, when it has them."""
     reasons = dict(fit.excluded)
     return [
         {
@@ -424,6 +425,10 @@ def point_rows(
             ),
             "reason": reasons.get(i),
             "suspect": suspects.get(i),
+            # a reading that is the mean of samples (stored point, or a point read from a CSV)
+            "sd": getattr(p, "sample_sd", getattr(p, "sd", None)),
+            "n": getattr(p, "sample_n", getattr(p, "n", None)),
+            "rejected": getattr(p, "sample_rejected", getattr(p, "rejected", None)),
         }
         for i, p in enumerate(points)
     ]

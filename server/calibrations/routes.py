@@ -22,6 +22,7 @@ from server.calibrations.history_csv import read_history
 from server.calibrations.models import SessionKind, latest_session
 from server.calibrations.schemas import (
     CalibrationCreate,
+    CalibrationPreviewRead,
     CalibrationRead,
     CalibrationSummaryRead,
     CurrentCalibrationRead,
@@ -60,6 +61,15 @@ IdempotencyKey = Annotated[
         "the same key stores nothing twice and answers what the first one answered",
     ),
 ]
+
+
+@router.post("/units/{serial}/calibrations/preview", response_model=CalibrationPreviewRead)
+def preview_calibration(
+    serial: str, data: CalibrationCreate, session: SessionDep, user: ApiTechnician
+) -> CalibrationPreviewRead:
+    """Fit and judge the points as a save would, and store nothing: a bench script shows this
+    before it asks to save."""
+    return service.preview_read(get_unit(session, serial), data)
 
 
 @router.post(

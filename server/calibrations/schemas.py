@@ -29,6 +29,15 @@ class PointIn(BaseModel):
     reading: float = Field(allow_inf_nan=False, description="what the unit read")
     excluded: bool = False
     exclude_reason: str | None = Field(None, max_length=500)
+    sd: float | None = Field(
+        None,
+        ge=0,
+        allow_inf_nan=False,
+        description="when the reading is the mean of several samples: their standard deviation, "
+        "reading units",
+    )
+    n: int | None = Field(None, ge=1, description="how many samples that mean has")
+    rejected: int | None = Field(None, ge=0, description="samples left out as spikes")
 
 
 class CalibrationCreate(BaseModel):
@@ -113,6 +122,9 @@ class PointRead(BaseModel):
     used: bool
     excluded_reason: str | None
     residual: float
+    sd: float | None = Field(None, description="SD of the samples averaged, reading units")
+    n: int | None = Field(None, description="samples averaged into the reading")
+    rejected: int | None = Field(None, description="samples left out as spikes")
     suspect_reason: str | None = Field(
         None, description="why the point is suspect (flagged, still used); None when it is not"
     )
@@ -250,6 +262,28 @@ class CalibrationSummaryRead(BaseModel):
     voided: bool
     void_reason: str | None
     fits: int = Field(description="how many fits the session has had (refits add one each)")
+
+
+class CalibrationPreviewRead(BaseModel):
+    """What saving these points would store (fit and decision), with nothing stored."""
+
+    unit: str
+    sensor_type: str
+    value_unit: str
+    reading_unit: str
+    points: int
+    family: str
+    formula: str
+    params: dict[str, float]
+    stderr: dict[str, float]
+    rse: float
+    dof: int
+    valid_range: tuple[float, float]
+    monotone: bool
+    excluded: list[str] = Field(description="points the fit left out, with the reason")
+    decision: DecisionRead
+    ranking: RankingRead
+    suspects: list[SuspectRead]
 
 
 class CalibrationRead(BaseModel):

@@ -29,6 +29,7 @@ from server.calibrations.schemas import (
     BudgetRead,
     BudgetRowRead,
     CalibrationCreate,
+    CalibrationPreviewRead,
     CalibrationRead,
     CalibrationSummaryRead,
     CurrentCalibrationRead,
@@ -210,6 +211,39 @@ def judge(
     )
 
 
+def preview_read(unit: Unit, data: CalibrationCreate) -> CalibrationPreviewRead:
+    """``fit_points`` of a session's points for the API's preview; nothing is stored."""
+    sensor_type = unit.sensor_type
+    outcome = fit_points(
+        sensor_type,
+        data.points,
+        data.family,
+        type_b_of(
+            sensor_type, data.reference_expanded_u, data.reference_k, data.extra_u, data.extra_label
+        ),
+    )
+    result = outcome.fit
+    return CalibrationPreviewRead(
+        unit=unit.serial,
+        sensor_type=sensor_type.name,
+        value_unit=sensor_type.value_unit,
+        reading_unit=sensor_type.reading_unit,
+        points=len(data.points),
+        family=result.family,
+        formula=shared.get_family(result.family).formula,
+        params=dict(result.params),
+        stderr=result.stderr,
+        rse=result.rse,
+        dof=result.dof,
+        valid_range=result.valid_range,
+        monotone=result.monotone,
+        excluded=[f"point {i + 1}: {reason}" for i, reason in result.excluded],
+        decision=DecisionRead.model_validate(outcome.decision.to_dict()),
+        ranking=RankingRead(**outcome.ranking),
+        suspects=[SuspectRead(**s) for s in outcome.diagnostics["suspects"]],
+    )
+
+
 def repeat_indices(values: list[float]) -> list[int]:
     """0, 1, 2... for each repeated reading at the same reference value, in entry order."""
     seen: dict[float, int] = defaultdict(int)
@@ -297,6 +331,9 @@ def run_calibration(
             repeat_index=repeats[i],
             excluded=p.excluded,
             exclude_reason=p.exclude_reason.strip() if p.excluded and p.exclude_reason else None,
+            sample_sd=p.sd,
+            sample_n=p.n,
+            sample_rejected=p.rejected,
         )
         for i, p in enumerate(data.points)
     ]
@@ -457,6 +494,9 @@ def calibration_read(record: CalibrationSession, reading: float | None = None) -
             used=bool(result.used[i]),
             excluded_reason=reasons.get(i),
             residual=float(result.residuals[i]),
+            sd=p.sample_sd,
+            n=p.sample_n,
+            rejected=p.sample_rejected,
             suspect_reason=suspect_reasons.get(i),
         )
         for i, p in enumerate(record.points)

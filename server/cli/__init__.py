@@ -1,6 +1,7 @@
 """The `sensorledger` command: serve the app, upgrade the database, manage users and API tokens,
-import a file of points as a calibration or a whole history, export a unit's calibration, back up
-the database and restore it, fit a file of points offline.
+import a file of points as a calibration or a whole history, capture points from a unit's
+serial port, export a unit's calibration, back up the database and restore it, fit a file of
+points offline.
 
 Every command but ``fit`` takes ``--db PATH|URL`` (a SQLite file or a SQLAlchemy URL); without it
 the database is ``$SENSORLEDGER_DATABASE_URL``, else the SQLite file ``./data/sensorledger.db``.
@@ -26,6 +27,7 @@ from server.cli.accounts import (
     _token_create,
     _user_add,
 )
+from server.cli.capture import _capture, _configure_capture
 from server.cli.common import (
     EXIT_ENVIRONMENT,
     EXIT_MISTAKE,
@@ -163,6 +165,12 @@ COMMANDS = (
         _import_history,
     ),
     Command(
+        ("capture",),
+        "take a unit's calibration points from its serial port, then post them or write a file",
+        _configure_capture,
+        _capture,
+    ),
+    Command(
         ("export",),
         "export a unit's current calibration: conversion table (CSV, JSON) or C header",
         _configure_export,
@@ -193,6 +201,7 @@ EPILOG = """examples:
   sensorledger fit points.csv                   rank every family on a file of points
   sensorledger import points.csv --unit IR-0001 --operator tess --reference "jig DJ-2"
   sensorledger import-history history.csv --report rejected.csv
+  sensorledger capture --port /dev/ttyACM0 --unit IR-0001 --plan 100,150,200 --offline ir.csv
   sensorledger export IR-0001 --format c --output ir_0001.h
   sensorledger backup backups/sensorledger-2025-06-01.db
   sensorledger restore backups/sensorledger-2025-06-01.db --db new.db

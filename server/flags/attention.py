@@ -46,8 +46,10 @@ class Counts:
             n for (k, s), n in self.open.items() if kind in (None, k) and severity in (None, s)
         )
 
-    def waiting_of(self, kind: FlagKind | None = None) -> int:
-        return sum(n for (k, _), n in self.waiting.items() if kind in (None, k))
+    def waiting_of(self, kind: FlagKind | None = None, severity: Severity | None = None) -> int:
+        return sum(
+            n for (k, s), n in self.waiting.items() if kind in (None, k) and severity in (None, s)
+        )
 
 
 def count_open(session: Session) -> Counts:

@@ -38,7 +38,7 @@ E = TypeVar("E", bound=Enum)
 DEFAULT_PER_PAGE = PageParams().per_page
 SECTION_TITLES = {
     Section.action: "Act on these",
-    Section.warning: "Warnings",
+    Section.warning: "Warnings: signals to watch",
     Section.closed: "Closed: the condition no longer holds",
 }
 CHART_LABELS = {
@@ -155,6 +155,9 @@ def _counts_context(session: Session, query: AttentionQuery) -> dict[str, Any]:
         "action_total": counts.of(severity=Severity.action),
         "warning_total": counts.of(severity=Severity.warning),
         "waiting": counts.waiting_of(),
+        "waiting_action": counts.waiting_of(severity=Severity.action),
+        # the warnings heading's count: open warnings under the list's kind filter
+        "warning_heading_count": counts.of(query.kind, Severity.warning),
         "query": query,
     }
 

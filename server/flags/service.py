@@ -709,8 +709,12 @@ def flags_of(unit: Unit) -> list[Flag]:
 
 
 def count_needing_attention(session: Session) -> int:
-    """Open flags nobody has acknowledged: the number beside "Needs attention" (every page)."""
-    query = select(func.count(Flag.id)).where(Flag.open.is_(True), Flag.acknowledged_at.is_(None))
+    """Open action-level flags nobody has acknowledged: the number beside "Needs attention" (every
+    page). Warnings (e.g. a fleet |z| between 2 and 3, which some healthy units show by chance)
+    are listed on the page under their own heading, not counted here."""
+    query = select(func.count(Flag.id)).where(
+        Flag.open.is_(True), Flag.acknowledged_at.is_(None), Flag.severity == Severity.action
+    )
     return session.scalar(query) or 0
 
 

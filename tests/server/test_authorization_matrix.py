@@ -52,6 +52,7 @@ RULES: dict[tuple[str, str], str] = {
     ("PATCH", "/api/v1/units/{serial}"): TECHNICIAN,
     ("POST", "/api/v1/units/{serial}/calibrations"): TECHNICIAN,
     ("POST", "/api/v1/units/{serial}/calibrations/csv"): TECHNICIAN,
+    ("POST", "/api/v1/units/{serial}/calibrations/preview"): TECHNICIAN,
     ("GET", "/api/v1/units/{serial}/calibrations"): VIEWER_ROLE,
     ("GET", "/api/v1/units/{serial}/calibrations/{session_id}"): VIEWER_ROLE,
     ("POST", "/api/v1/units/{serial}/calibrations/{session_id}/void"): TECHNICIAN,

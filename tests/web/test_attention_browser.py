@@ -86,3 +86,31 @@ def test_a_plot_loads_when_its_card_scrolls_into_view(
         page.screenshot(path=artifacts / "attention-scrolled.png", full_page=False)
     finally:
         _drop_copies(url)
+
+
+def test_warnings_are_collapsed_out_of_the_badge_and_open_with_their_plots(
+    page: Any, live_db: tuple[str, Fleet], artifacts: Path
+) -> None:
+    url, fleet = live_db
+    page.goto("/attention")
+    badge_before = page.locator("#nav-count").inner_text()
+    _copy_flags(url, fleet.failing)
+    try:
+        page.goto(f"/attention?per_page={COPIES + 20}")
+        assert page.locator("#nav-count").inner_text() == badge_before  # warnings not counted
+        warnings = page.locator("details.flag-section.section-warning")
+        summary = warnings.locator("summary")
+        assert re.search(rf"Warnings: signals to watch\s+{COPIES}\b", summary.inner_text())
+        assert warnings.get_attribute("open") is None
+        first = warnings.locator(".flag-card").first
+        assert not first.is_visible()  # collapsed: listed, not shown
+        actions = page.locator("section.flag-section.section-action .flag-card")
+        assert actions.count() >= 1 and actions.first.is_visible()
+        page.screenshot(path=artifacts / "attention-warnings-collapsed.png", full_page=True)
+        summary.click()
+        assert first.is_visible()
+        first.scroll_into_view_if_needed()
+        first.locator(".flag-plot.js-plotly-plot .main-svg").first.wait_for()
+        page.screenshot(path=artifacts / "attention-warnings-open.png", full_page=False)
+    finally:
+        _drop_copies(url)

@@ -88,7 +88,11 @@ def test_counts_first_then_a_page_of_flags_actions_first_grouped_by_kind(client)
     assert rows["failed_acceptance"] == [11, 0, 11]
     assert rows["overdue"] == [1, 20, 21]
     assert rows["fleet_outlier"] == [0, 0, 0]
-    assert "<strong>57</strong> open flags waiting" in counts
+    # the badge and the status line count open action flags nobody acknowledged (1 + 11 + 1);
+    # the 44 warnings are named apart and counted under their own heading
+    assert "<strong>13</strong> action flags waiting for an acknowledgement" in counts
+    assert re.search(r'severity=warning[^"]*">44 warnings</a> to watch, not counted', counts)
+    assert re.search(r'<span id="nav-count" class="nav-count">13</span>', html)
 
     shown = cards(html)
     assert len(shown) == 20
@@ -102,6 +106,11 @@ def test_counts_first_then_a_page_of_flags_actions_first_grouped_by_kind(client)
         ("warning", "drift"),
     ]
     assert Counter(k for _, k, _ in groups)["drift"] == 2  # one group per section and kind
+    # warnings collapsed (a closed <details>) under their heading with their count
+    warnings = re.search(r'<details class="flag-section section-warning"[^>]*>', html).group(0)
+    assert " open" not in warnings
+    assert re.search(r"Warnings: signals to watch <span class=\"section-count\">44</span>", html)
+    assert html.index('class="flag-section section-action"') < html.index("section-warning")
     assert "data-figure" not in html  # no plot is built before the first byte
 
 
@@ -136,6 +145,9 @@ def test_filters_by_kind_and_severity(client) -> None:
     html = client.get("/attention?kind=drift&severity=warning").text
     assert {(s, k) for s, k, _ in GROUP.findall(html)} == {("warning", "drift")}
     assert len(cards(html)) == 24 and "Show every kind" in html
+    # filtered to warnings, the section is open and counts the kind's warnings
+    assert re.search(r'<details class="flag-section section-warning"[^>]* open>', html)
+    assert re.search(r'<span class="section-count">24</span>', html)
     assert 'href="/attention?kind=drift&amp;severity=warning"' in html  # from the counts table
     for bad in ("kind=nope", "severity=loud", "show=some"):
         assert client.get(f"/attention?{bad}").status_code == 422

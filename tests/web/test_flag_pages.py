@@ -67,7 +67,7 @@ def test_acknowledge_with_htmx_swaps_the_card_the_counts_and_the_nav_count(clien
     html = client.get("/attention").text
     found = re.search(r'data-kind="failed_acceptance".*?id="flag-(\d+)"', html, re.S)
     flag_id = int(found.group(1))
-    waiting = int(re.search(r"<strong>(\d+)</strong> open flag", html).group(1))
+    waiting = int(re.search(r"<strong>(\d+)</strong> action flag", html).group(1))
     url = f"/attention/flags/{flag_id}/acknowledge"
     bad = client.post(url, data={"note": ""}, headers={"HX-Request": "true"})
     assert bad.status_code == 422 and bad.text.lstrip().startswith("<article")
@@ -78,7 +78,7 @@ def test_acknowledge_with_htmx_swaps_the_card_the_counts_and_the_nav_count(clien
     assert ok.text.lstrip().startswith('<article class="flag-card severity-action acknowledged"')
     assert "sent back" in ok.text
     assert 'id="attention-counts"' in ok.text and 'hx-swap-oob="true"' in ok.text
-    assert f"<strong>{waiting - 1}</strong> open flag" in ok.text  # the counts follow
+    assert f"<strong>{waiting - 1}</strong> action flag" in ok.text  # the counts follow
     assert re.search(rf'id="nav-count"[^>]*hx-swap-oob="true"[^>]*>{waiting - 1}<', ok.text)
 
 

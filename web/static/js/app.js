@@ -23,6 +23,11 @@
         const figure = JSON.parse(el.dataset.figure);
         // data-static="yes": a printable plot (no hover, no mode bar, fixed size from the layout)
         const config = el.dataset.static === "yes" ? STATIC_CONFIG : PLOT_CONFIG;
+        // a fixed-size (printable) plot narrower than its layout on a phone: draw it to fit
+        if (el.dataset.static === "yes" && figure.layout && figure.layout.width &&
+            el.clientWidth > 0 && el.clientWidth < figure.layout.width) {
+          figure.layout.width = el.clientWidth;
+        }
         Plotly.newPlot(el, figure.data, figure.layout, config);
         el.dataset.drawn = "yes";
       } catch (err) {
@@ -109,4 +114,12 @@
   document.addEventListener("htmx:sendError", () => {
     showProblem("The server could not be reached. Check the connection and try again.");
   });
+  // A plot in a collapsed section loads when it is opened: htmx checks "revealed" on scroll.
+  document.addEventListener(
+    "toggle",
+    function (event) {
+      if (event.target.open) window.dispatchEvent(new Event("scroll"));
+    },
+    true
+  );
 })();
