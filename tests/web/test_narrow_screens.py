@@ -10,6 +10,7 @@ land in tests/artifacts/narrow-<width>-<page>.png."""
 from __future__ import annotations
 
 import re
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -24,11 +25,15 @@ from server.config import Settings
 from server.db import make_engine, make_sessionmaker
 from server.flags.models import Flag
 from server.fleet.models import Unit
+from server.standards import service as standards
+from server.standards.models import ReferenceStandard
+from server.standards.schemas import StandardCreate
 from tests.web.seed import IR_TYPE, Fleet
 
 pytestmark = pytest.mark.browser
 WIDTHS = (390, 768)
 ADMIN = ("wanda", "walk-every-page-1")  # an admin sees every page
+STD = "NS angle jig"  # a reference standard, for the pages of one
 SKIP_PREFIXES = ("/api/", "/static", "/docs", "/redoc", "/openapi")
 # downloads and htmx-only answers: not pages a person reads at a width
 NOT_PAGES = re.compile(r"\.(csv|json|h)$|/jobs/\{job_id\}$|^/find$")
@@ -49,6 +54,28 @@ def page_paths(url: str, fleet: Fleet) -> list[str]:
             if session.scalar(select(User).where(User.name == ADMIN[0])) is None:
                 accounts.create_user(session, ADMIN[0], Role.admin, password=ADMIN[1])
                 session.commit()
+            known = select(ReferenceStandard).where(ReferenceStandard.name == STD)
+            if session.scalar(known) is None:
+                session.scalar(select(ReferenceStandard).where(ReferenceStandard.name == STD))
+                is None
+            ):
+                today = datetime.now(UTC).date()
+                standards.create_standard(
+                    session,
+                    StandardCreate(
+                        name=STD,
+                        description="invented angle jig for the narrow-screen test",
+                        quantity="angle",
+                        value_unit="deg",
+                        expanded_u=0.1,
+                        k=2,
+                        certificate="NS-1",
+                        calibrated_on=today - timedelta(days=100),
+                        due_on=today + timedelta(days=265),
+                    ),
+                    ADMIN[0],
+                )
+                session.commit()
     finally:
         engine.dispose()
         app.state.engine.dispose()
@@ -67,8 +94,9 @@ def page_paths(url: str, fleet: Fleet) -> list[str]:
         params = re.findall(r"\{(\w+)(?::\w+)?\}", path)
         missing = [p for p in params if p not in values]
         assert not missing, f"{path}: no value for {missing}; add one to this test"
+        given = {**values, "name": STD} if path.startswith("/standards/") else values
         for p in params:
-            path = re.sub(r"\{" + p + r"(?::\w+)?\}", values[p], path)
+            path = re.sub(r"\{" + p + r"(?::\w+)?\}", given[p], path)
         paths.append(path)
     # the same pages in their other states a user meets
     paths += [f"/calibrate?unit={fleet.fresh}", "/types/new", "/attention?show=all"]
