@@ -56,9 +56,6 @@ def page_paths(url: str, fleet: Fleet) -> list[str]:
                 session.commit()
             known = select(ReferenceStandard).where(ReferenceStandard.name == STD)
             if session.scalar(known) is None:
-                session.scalar(select(ReferenceStandard).where(ReferenceStandard.name == STD))
-                is None
-            ):
                 today = datetime.now(UTC).date()
                 standards.create_standard(
                     session,
