@@ -1,0 +1,153 @@
+"""Batched fits with the noise in the reading (``noise="reading"``), for ``shared.batch``.
+
+fit() minimises the effective-variance objective sum e_i^2, e_i = (v_i - f(r_i)) / |f'(r_i)|:
+each residual measured in reading units (see ``shared.fitting``). Here the same objective is
+minimised for all units of a group at once, from each unit's value-noise solution, by
+Levenberg-Marquardt on stacked p x p systems with the analytic Jacobian
+
+    de/dtheta = -(J_f + e sign(f') J_f') / |f'|,
+
+J_f = df/dtheta and J_f' = df'/dtheta given by the family's ``EvModel``. A unit has converged when
+a Gauss-Newton step would move its normalised residuals by less than EV_XTOL of their root sum
+of squares (the parameters are then within ~EV_XTOL of a standard uncertainty of the minimum),
+by less than EV_FLOOR of the readings' scale (an exact fit's rounding floor), or by less than
+EV_STALL and not half as much as the step before (the steps are rounding noise). Near the
+minimum an undamped step smaller than EV_TRUST is taken even when the rounded sum of squares
+cannot see it fall. The unscaled covariance is (J^T J)^-1 of the normalised
+residuals at the estimate, as fit() takes it; a unit whose Jacobian is near singular there (the
+singular values of the column-scaled Jacobian more than 1e12 apart, fit()'s rule), whose slope
+is zero or not finite at a point, or that has not converged after EV_MAX_ITER steps is left
+out (``ok`` False): fit() then fits it, or raises.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+
+from shared.batch_common import Index, Mask
+from shared.families.base import Array
+
+EV_MAX_ITER = 60  # Levenberg-Marquardt steps at most
+EV_XTOL = 1e-10  # converged: a Gauss-Newton step moves the normalised residuals by less than
+# this fraction of their root sum of squares ...
+EV_FLOOR = 1e-13  # ... or by less than this fraction of the readings' scale
+EV_STALL = 1e-8  # ... or by less than this fraction and not half the previous step (rounding)
+EV_TRUST = 1e-6  # an undamped step this small (relative) is taken: its gain is below the
+# rounding of the sum of squares, which cannot judge it
+
+# (theta, rows) -> f, J_f, f', J_f' at the rows' points: (u, n), (u, n, p), (u, n), (u, n, p)
+EvModel = Callable[[Array, Index], tuple[Array, Array, Array, Array]]
+# theta -> True where the parameters are admissible (e.g. no pole inside the readings)
+Admissible = Callable[[Array, Index], Mask]
+
+
+def effective_variance(
+    model: EvModel,
+    admissible: Admissible,
+    v: Array,
+    reading_scale: Array,
+    start: Array,
+    ok: Mask,
+) -> tuple[Array, Array, Mask]:
+    """Minimise sum((v - f) / |f'|)^2 per unit: (theta, unscaled covariance, converged).
+
+    ``v``: (units, n) values; ``reading_scale``: (units,) a size of the readings (for the exact-
+    fit floor); ``start``: (units, p); ``ok``: the units to fit.
+    """
+    units, p = start.shape
+    theta = start.copy()
+    cov = np.full((units, p, p), np.nan)
+    done = np.zeros(units, dtype=bool)
+    lam = np.zeros(units)
+    cost = np.full(units, np.inf)
+    last = np.full(units, np.inf)
+    active = np.flatnonzero(ok & np.isfinite(start).all(axis=1))
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        for _ in range(EV_MAX_ITER):
+            if not active.size:
+                break
+            th = theta[active]
+            e, jac, good = _normalised(model, th, v[active], active)
+            c = np.einsum("un,un->u", e, e)
+            cost[active] = np.where(np.isfinite(cost[active]), cost[active], c)
+            norms = np.sqrt(np.einsum("unp,unp->up", jac, jac))
+            good &= np.all(norms > 0, axis=1) & np.isfinite(norms).all(axis=1)
+            norms = np.where(good[:, None], norms, 1.0)
+            js = jac / norms[:, None, :]
+            gram = np.matmul(np.swapaxes(js, 1, 2), js)
+            grad = np.einsum("unp,un->up", js, e)
+            eye = np.eye(p)
+            safe = np.where(good[:, None, None], gram, eye)
+            step = -np.linalg.solve(safe, grad[:, :, None])[:, :, 0]
+            moved = np.sqrt(np.abs(np.einsum("up,up->u", step, -grad)))  # ||J_s step||
+            root = np.sqrt(c)
+            stalled = (moved <= EV_STALL * root) & (moved > 0.5 * last[active])
+            last[active] = moved
+            floor = good & (
+                (moved <= EV_XTOL * root) | (moved <= EV_FLOOR * reading_scale[active]) | stalled
+            )
+            if floor.any():
+                fin = active[floor]
+                done[fin] = True
+                cov[fin] = _covariance(safe[floor], norms[floor])
+            go = good & ~floor
+            dropped = ~good
+            if dropped.any():
+                active_bad = active[dropped]
+                done[active_bad] = False
+            active, th, step, grad, safe, norms, moved, root = (
+                active[go],
+                th[go],
+                step[go],
+                grad[go],
+                safe[go],
+                norms[go],
+                moved[go],
+                root[go],
+            )
+            if not active.size:
+                break
+            la = lam[active]
+            damped = la > 0
+            if damped.any():
+                lm = safe[damped] + la[damped, None, None] * eye
+                step[damped] = -np.linalg.solve(lm, grad[damped][:, :, None])[:, :, 0]
+            trial = th + step / norms
+            e_t, _, fine = _normalised(model, trial, v[active], active, jacobian=False)
+            fine &= admissible(trial, active)
+            new_cost = np.where(fine, np.einsum("un,un->u", e_t, e_t), np.inf)
+            small = (moved <= EV_TRUST * root) & ~damped
+            better = fine & ((new_cost <= cost[active]) | small)
+            theta[active[better]] = trial[better]
+            cost[active[better]] = new_cost[better]
+            lam[active] = np.where(
+                better, np.where(la < 1e-6, 0.0, la * 0.1), np.maximum(la * 10.0, 1e-3)
+            )
+    return theta, cov, done
+
+
+def _normalised(
+    model: EvModel, theta: Array, v: Array, rows: Index, *, jacobian: bool = True
+) -> tuple[Array, Array, Mask]:
+    """e = (v - f) / |f'| and its Jacobian; ``good``: f' non-zero and everything finite."""
+    f, jf, g, jg = model(theta, rows)
+    size = np.abs(g)
+    e = (v - f) / size
+    good = np.all(size > 0, axis=1) & np.isfinite(e).all(axis=1)
+    if not jacobian:
+        return e, jf, good
+    jac = -(jf + (e * np.sign(g))[:, :, None] * jg) / size[:, :, None]
+    good &= np.isfinite(jac).all(axis=(1, 2))
+    return e, jac, good
+
+
+def _covariance(gram: Array, norms: Array) -> Array:
+    """(J^T J)^-1 from the scaled Gram matrix; NaN where the column-scaled Jacobian's singular
+    values span more than 1e12 (fit() raises SingularFit there)."""
+    eig = np.linalg.eigvalsh(gram)
+    regular = eig[:, 0] > (1e-12) ** 2 * eig[:, -1]
+    inverse = np.linalg.inv(np.where(regular[:, None, None], gram, np.eye(gram.shape[1])))
+    core = inverse / (norms[:, :, None] * norms[:, None, :])
+    return np.where(regular[:, None, None], core, np.nan)
