@@ -29,8 +29,8 @@ option hooks):
 * exclusions, masked: a user's ``exclude`` and, for a family that can fold back, the points past
   a turnover are taken out of each unit, and the units are regrouped by the number of points they
   keep (the used points packed into dense rows): the solvers see only used points, as fit()'s
-  solve does. Fold-back detection: a vectorised test proves for most units that
-  ``find_foldback`` finds no turnover; the others are checked with ``find_foldback`` itself.
+  solve does. Fold-back detection: ``shared.foldback.find_turnovers`` for all units with one
+  point per reference value at once, ``find_foldback`` (the same test) for the others.
 * residuals (at every point, excluded ones extrapolated), dof, rse, scale, weights, valid range
   and the monotonicity check on ``MONOTONE_GRID`` points with fit()'s formulas, batched; the Fit
   objects share read-only arrays, one row per unit.
@@ -68,7 +68,7 @@ from shared.families._monomial import MonomialFamily
 from shared.families.base import Array, Family
 from shared.families.inverse_offset import InverseOffset
 from shared.fitting import Fit, direction_of, fit
-from shared.foldback import MIN_REVERSAL, Foldback, find_foldback
+from shared.foldback import MIN_LEVELS, Foldback, describe, find_foldback, find_turnovers
 
 FIT_KEYWORDS = ("noise", "u_value", "u_reading", "relative", "exclude")  # fit()'s own keywords
 
@@ -341,40 +341,39 @@ def _collect(
 
 
 def _foldbacks(r: Array, v: Array) -> dict[int, Foldback]:
-    """The units (row -> Foldback) in which ``find_foldback`` finds a turnover."""
+    """The units (row -> Foldback) in which ``find_foldback`` finds a turnover.
+
+    Units whose reference values are all different (one point per level, the common case) are
+    tested together by ``find_turnovers`` on their points ordered by value; the others one by one
+    by ``find_foldback``, which runs the same test on their level means.
+    """
     found: dict[int, Foldback] = {}
-    for i in np.flatnonzero(~_no_foldback(r, v)).tolist():
+    units, n = r.shape
+    if n < MIN_LEVELS or not units:
+        return found
+    order = np.argsort(v, axis=1, kind="stable")
+    vs = np.take_along_axis(v, order, axis=1)
+    rs = np.take_along_axis(r, order, axis=1)
+    distinct = np.all(np.diff(vs, axis=1) > 0, axis=1)
+    for i in np.flatnonzero(~distinct).tolist():
         fold = find_foldback(r[i], v[i])
         if fold is not None:
             found[i] = fold
+    rows = np.flatnonzero(distinct & (np.ptp(r, axis=1) > 0))
+    if not rows.size:
+        return found
+    turn = find_turnovers(rs[rows], vs[rows], np.ones((rows.size, n)))
+    for j in np.flatnonzero(turn.found).tolist():
+        i, idx, below = int(rows[j]), int(turn.level[j]), bool(turn.below[j])
+        beyond = order[i, :idx] if below else order[i, idx + 1 :]
+        reason = describe(
+            float(vs[i, idx]),
+            float(rs[i, idx]),
+            "below" if below else "above",
+            float(turn.t[j]),
+            int(turn.dof[j]),
+        )
+        found[i] = Foldback(
+            float(vs[i, idx]), float(rs[i, idx]), tuple(sorted(beyond.tolist())), reason
+        )
     return found
-
-
-def _no_foldback(r: Array, v: Array) -> Mask:
-    """True where ``find_foldback`` surely finds no turnover; the others are to be checked.
-
-    The vectorised test covers units whose reference values are all different (each level one
-    point, so a level's mean reading is the reading): a candidate needs the extreme reading to
-    leave at least one level beyond it but fewer than on the main side, and a reversal of at least
-    MIN_REVERSAL of the span (taken with a 1 % margin); with no candidate there is no fold-back.
-    """
-    units, n = r.shape
-    sure = np.ones(units, dtype=bool)
-    if n >= 5:
-        if np.array_equal(v, np.broadcast_to(v[0], v.shape)):  # the same reference values
-            order0 = np.argsort(v[0], kind="stable")
-            vs, rs = v[:, order0], r[:, order0]
-        else:
-            order = np.argsort(v, axis=1, kind="stable")
-            vs = np.take_along_axis(v, order, axis=1)
-            rs = np.take_along_axis(r, order, axis=1)
-        sure = np.all(np.diff(vs, axis=1) > 0, axis=1)
-        limit = 0.99 * MIN_REVERSAL * np.ptp(r, axis=1)
-        rows = np.arange(units)
-        for idx in (np.argmax(rs, axis=1), np.argmin(rs, axis=1)):
-            peak = rs[rows, idx]
-            below = (idx >= 1) & (idx < n - 1 - idx) & (np.abs(peak - rs[:, 0]) >= limit)
-            above_size = n - 1 - idx
-            above = (above_size >= 1) & (above_size < idx) & (np.abs(rs[:, -1] - peak) >= limit)
-            sure &= ~below & ~above
-    return sure

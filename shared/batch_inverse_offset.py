@@ -426,30 +426,64 @@ def values_inverse_offset(fam: Family, opts: Mapping[str, Any], params: Array, r
 
 
 def reading_inverse_offset(fam: Family, opts: Mapping[str, Any], r: Array, v: Array) -> Solved:
-    """The effective-variance fit (``shared.batch_reading``) of inverse_offset units, from the
-    value-noise solution; f' = -k x^2 and its derivatives (-x^2, 2 k x^3, 0), x = 1/(r + r0).
-    Steps that would put the pole r = -r0 at or above a reading are refused."""
-    from shared.batch_reading import effective_variance
+    """The effective-variance fit (``shared.batch_reading``) of inverse_offset units.
 
-    first = solve_inverse_offset(fam, opts, r, v)
+    The start is algebraic: (v - v0)(r + r0) = k is linear in (r0, v0, k + v0 r0) as
+    v r = -r0 v + v0 r + c, solved by least squares for all units at once; where that start is
+    unusable (a pole inside the readings), the fit the other way round (the readings as an
+    inverse_offset function of the values, r = k / (v - v0) - r0, the same curve: the family is
+    its own inverse), by the batched value-noise solver with the roles swapped.
+    f' = -k x^2 and its derivatives (-x^2, 2 k x^3, 0), x = 1/(r + r0); steps that would put the
+    pole r = -r0 at or above a reading are refused.
+    """
+    from shared.batch_reading import Curvature, effective_variance
 
-    def model(theta: Array, rows: Index) -> tuple[Array, Array, Array, Array]:
+    units, n = r.shape
+    start = _algebraic_start(r, v)
+    with np.errstate(invalid="ignore"):
+        usable = np.isfinite(start).all(axis=1) & np.all(r + start[:, 1:2] > 0, axis=1)
+    ok = np.ones(units, dtype=bool)
+    rest = np.flatnonzero(~usable)
+    if rest.size:  # the fit the other way round (the readings from the values), by the scan
+        swapped = solve_inverse_offset(fam, opts, v[rest], r[rest])
+        start[rest] = np.stack(
+            [swapped.params[:, 0], -swapped.params[:, 2], -swapped.params[:, 1]], axis=1
+        )
+        with np.errstate(invalid="ignore"):
+            ok[rest] = swapped.ok & np.all(r[rest] + start[rest, 1:2] > 0, axis=1)
+    ok &= basic_ok(r, 3)
+    buf_f = np.empty((units, n, 3))
+    buf_g = np.empty((units, n, 3))
+
+    def model(theta: Array, rows: Index) -> tuple[Array, Array, Array, Array, Curvature]:
         rr = r[rows]
         k = theta[:, 0:1]
         x = 1.0 / (rr + theta[:, 1:2])
         x2 = x * x
-        f = k * x + theta[:, 2:3]
-        jf = np.stack([x, -k * x2, np.ones_like(x)], axis=-1)
-        g = -k * x2
-        jg = np.stack([-x2, 2.0 * k * x2 * x, np.zeros_like(x)], axis=-1)
-        return f, jf, g, jg
+        jf, jg = buf_f[: len(rows)], buf_g[: len(rows)]
+        jf[:, :, 0] = x
+        np.multiply(-k, x2, out=jf[:, :, 1])
+        jf[:, :, 2] = 1.0
+        np.negative(x2, out=jg[:, :, 0])
+        np.multiply(2.0 * k, x2 * x, out=jg[:, :, 1])
+        jg[:, :, 2] = 0.0
+
+        def curvature(c1: Array, c2: Array) -> Array:
+            """d2f: (k, r0) -x^2, (r0, r0) 2k x^3; d2f': (k, r0) 2x^3, (r0, r0) -6k x^4."""
+            x3 = x2 * x
+            out = np.zeros((len(rows), 3, 3))
+            out[:, 0, 1] = out[:, 1, 0] = np.einsum("un,un->u", -c1 + 2.0 * c2 * x, x2)
+            out[:, 1, 1] = 2.0 * k[:, 0] * np.einsum("un,un->u", c1 - 3.0 * c2 * x, x3)
+            return out
+
+        return k * x + theta[:, 2:3], jf, jf[:, :, 1], jg, curvature
 
     def admissible(theta: Array, rows: Index) -> Mask:
         return np.asarray(np.all(r[rows] + theta[:, 1:2] > 0, axis=1))
 
     scale = np.maximum(np.abs(r).max(axis=1), 1e-300)
-    params, cov, converged = effective_variance(model, admissible, v, scale, first.params, first.ok)
-    ok = first.ok & converged
+    params, cov, converged = effective_variance(model, admissible, v, scale, start, ok)
+    ok &= converged
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         x = 1.0 / (r + params[:, 1:2])
         residuals = v - (params[:, 0:1] * x + params[:, 2:3])
@@ -458,4 +492,23 @@ def reading_inverse_offset(fam: Family, opts: Mapping[str, Any], r: Array, v: Ar
     ok &= np.isfinite(residuals).all(axis=1) & np.isfinite(weights).all(axis=1)
     ok &= np.isfinite(cov).all(axis=(1, 2))
     # monotone by construction, as for the value-noise fit (no pole inside the valid range)
-    return Solved(ok, params, cov, residuals, np.ones(len(r), dtype=bool), weights)
+    return Solved(ok, params, cov, residuals, np.ones(units, dtype=bool), weights)
+
+
+def _algebraic_start(r: Array, v: Array) -> Array:
+    """(k, r0, v0) from v r = -r0 v + v0 r + c, c = k + v0 r0, by least squares (centred)."""
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        rc = r - r.mean(axis=1, keepdims=True)
+        vc = v - v.mean(axis=1, keepdims=True)
+        y = v * r
+        yc = y - y.mean(axis=1, keepdims=True)
+        design = np.stack([vc, rc], axis=-1)  # (u, n, 2)
+        gram = np.matmul(np.swapaxes(design, 1, 2), design)
+        rhs = np.matmul(np.swapaxes(design, 1, 2), yc[:, :, None])
+        det = gram[:, 0, 0] * gram[:, 1, 1] - gram[:, 0, 1] ** 2
+        a = (gram[:, 1, 1] * rhs[:, 0, 0] - gram[:, 0, 1] * rhs[:, 1, 0]) / det
+        b = (gram[:, 0, 0] * rhs[:, 1, 0] - gram[:, 0, 1] * rhs[:, 0, 0]) / det
+        c = y.mean(axis=1) - a * v.mean(axis=1) - b * r.mean(axis=1)
+        r0, v0 = -a, b
+        k = c - v0 * r0
+    return np.stack([k, r0, v0], axis=1)

@@ -209,7 +209,7 @@ def reading_monomial(fam: Family, opts: Mapping[str, Any], r: Array, v: Array) -
     (the design X and its derivative X' are fixed, f = X a and f' = X' a), started from the
     value-noise solution; the raw coefficients and their covariance follow through ``to_raw``.
     """
-    from shared.batch_reading import effective_variance
+    from shared.batch_reading import Curvature, effective_variance
 
     assert isinstance(fam, MonomialFamily)
     first = solve_monomial(fam, opts, r, v)
@@ -243,14 +243,10 @@ def reading_monomial(fam: Family, opts: Mapping[str, Any], r: Array, v: Array) -
         safe = np.where(ok[:, None, None], to_raw, np.eye(to_raw.shape[1]))
         start = np.linalg.solve(safe, first.params[:, :, None])[:, :, 0]
 
-    def model(a: Array, rows: Index) -> tuple[Array, Array, Array, Array]:
+    def model(a: Array, rows: Index) -> tuple[Array, Array, Array, Array, Curvature]:
         d, sd = design[rows], slope_design[rows]
-        return (
-            np.einsum("unp,up->un", d, a),
-            d,
-            np.einsum("unp,up->un", sd, a),
-            sd,
-        )
+        # f and f' are linear in a: no second derivatives
+        return np.einsum("unp,up->un", d, a), d, np.einsum("unp,up->un", sd, a), sd, None
 
     def admissible(a: Array, rows: Index) -> Mask:
         return np.ones(len(a), dtype=bool)
@@ -258,7 +254,7 @@ def reading_monomial(fam: Family, opts: Mapping[str, Any], r: Array, v: Array) -
     scale = np.maximum(np.abs(r).max(axis=1), 1e-300)
     a, cov_a, converged = effective_variance(model, admissible, v, scale, start, ok)
     ok &= converged
-    with np.errstate(invalid="ignore", over="ignore"):
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         params = np.matmul(to_raw, a[:, :, None])[:, :, 0]
         cov = np.matmul(np.matmul(to_raw, cov_a), np.swapaxes(to_raw, 1, 2))
         fitted = values_monomial(fam, opts, params, r)

@@ -3,11 +3,15 @@
 fit() minimises the effective-variance objective sum e_i^2, e_i = (v_i - f(r_i)) / |f'(r_i)|:
 each residual measured in reading units (see ``shared.fitting``). Here the same objective is
 minimised for all units of a group at once, from each unit's value-noise solution, by
-Levenberg-Marquardt on stacked p x p systems with the analytic Jacobian
+Newton steps (where the full Hessian J^T J + sum e d2e/dtheta2 is positive definite; Gauss-Newton
+otherwise, Levenberg-Marquardt damping after a step that failed) on stacked p x p systems with
+the analytic derivatives
 
     de/dtheta = -(J_f + e sign(f') J_f') / |f'|,
 
-J_f = df/dtheta and J_f' = df'/dtheta given by the family's ``EvModel``. A unit has converged when
+J_f = df/dtheta, J_f' = df'/dtheta and their second derivatives given by the family's
+``EvModel``. (Gauss-Newton alone converges only linearly here: the residuals are not small
+against the curvature of e, and took a dozen steps.) A unit has converged when
 a Gauss-Newton step would move its normalised residuals by less than EV_XTOL of their root sum
 of squares (the parameters are then within ~EV_XTOL of a standard uncertainty of the minimum),
 by less than EV_FLOOR of the readings' scale (an exact fit's rounding floor), or by less than
@@ -37,8 +41,11 @@ EV_STALL = 1e-8  # ... or by less than this fraction and not half the previous s
 EV_TRUST = 1e-6  # an undamped step this small (relative) is taken: its gain is below the
 # rounding of the sum of squares, which cannot judge it
 
-# (theta, rows) -> f, J_f, f', J_f' at the rows' points: (u, n), (u, n, p), (u, n), (u, n, p)
-EvModel = Callable[[Array, Index], tuple[Array, Array, Array, Array]]
+# (c1, c2) -> sum_i c1_i d2f_i/dtheta2 + c2_i d2f'_i/dtheta2: (u, p, p); None where both are 0
+Curvature = Callable[[Array, Array], Array] | None
+# (theta, rows) -> f, J_f, f', J_f' at the rows' points: (u, n), (u, n, p), (u, n), (u, n, p),
+# and the curvature contraction
+EvModel = Callable[[Array, Index], tuple[Array, Array, Array, Array, Curvature]]
 # theta -> True where the parameters are admissible (e.g. no pole inside the readings)
 Admissible = Callable[[Array, Index], Mask]
 
@@ -64,24 +71,31 @@ def effective_variance(
     cost = np.full(units, np.inf)
     last = np.full(units, np.inf)
     active = np.flatnonzero(ok & np.isfinite(start).all(axis=1))
+    eye = np.eye(p)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         for _ in range(EV_MAX_ITER):
             if not active.size:
                 break
             th = theta[active]
-            e, jac, good = _normalised(model, th, v[active], active)
+            e, jac, good, second = _normalised(model, th, v[active], active)
             c = np.einsum("un,un->u", e, e)
             cost[active] = np.where(np.isfinite(cost[active]), cost[active], c)
             norms = np.sqrt(np.einsum("unp,unp->up", jac, jac))
             good &= np.all(norms > 0, axis=1) & np.isfinite(norms).all(axis=1)
             norms = np.where(good[:, None], norms, 1.0)
             js = jac / norms[:, None, :]
-            gram = np.matmul(np.swapaxes(js, 1, 2), js)
-            grad = np.einsum("unp,un->up", js, e)
-            eye = np.eye(p)
+            js_t = np.swapaxes(js, 1, 2)
+            gram = np.matmul(js_t, js)
+            grad = np.matmul(js_t, e[:, :, None])[:, :, 0]
             safe = np.where(good[:, None, None], gram, eye)
             step = -np.linalg.solve(safe, grad[:, :, None])[:, :, 0]
             moved = np.sqrt(np.abs(np.einsum("up,up->u", step, -grad)))  # ||J_s step||
+            # Newton where the full Hessian (J^T J + sum e d2e) is positive definite
+            hess = safe + second / (norms[:, :, None] * norms[:, None, :])
+            hess = np.where(np.isfinite(hess), hess, eye)
+            newton = _positive_definite(hess)
+            if newton.any():
+                step[newton] = -np.linalg.solve(hess[newton], grad[newton][:, :, None])[:, :, 0]
             root = np.sqrt(c)
             stalled = (moved <= EV_STALL * root) & (moved > 0.5 * last[active])
             last[active] = moved
@@ -115,7 +129,7 @@ def effective_variance(
                 lm = safe[damped] + la[damped, None, None] * eye
                 step[damped] = -np.linalg.solve(lm, grad[damped][:, :, None])[:, :, 0]
             trial = th + step / norms
-            e_t, _, fine = _normalised(model, trial, v[active], active, jacobian=False)
+            e_t, _, fine, _ = _normalised(model, trial, v[active], active, jacobian=False)
             fine &= admissible(trial, active)
             new_cost = np.where(fine, np.einsum("un,un->u", e_t, e_t), np.inf)
             small = (moved <= EV_TRUST * root) & ~damped
@@ -130,17 +144,40 @@ def effective_variance(
 
 def _normalised(
     model: EvModel, theta: Array, v: Array, rows: Index, *, jacobian: bool = True
-) -> tuple[Array, Array, Mask]:
-    """e = (v - f) / |f'| and its Jacobian; ``good``: f' non-zero and everything finite."""
-    f, jf, g, jg = model(theta, rows)
+) -> tuple[Array, Array, Mask, Array]:
+    """e = (v - f) / |f'|, its Jacobian, ``good`` (f' non-zero and everything finite) and
+    sum_i e_i d2e_i/dtheta2 (the Hessian's second-order part, halved).
+
+    With u = v - f and w = |f'|: de = (du - e dw) / w and
+    d2e = (d2u - e d2w - dw de^T - de dw^T) / w.
+    """
+    f, jf, g, jg, curvature = model(theta, rows)
     size = np.abs(g)
     e = (v - f) / size
     good = np.all(size > 0, axis=1) & np.isfinite(e).all(axis=1)
     if not jacobian:
-        return e, jf, good
-    jac = -(jf + (e * np.sign(g))[:, :, None] * jg) / size[:, :, None]
+        return e, jf, good, jf
+    sign = np.sign(g)
+    jac = -(jf + (e * sign)[:, :, None] * jg) / size[:, :, None]
     good &= np.isfinite(jac).all(axis=(1, 2))
-    return e, jac, good
+    a = e / size
+    cross = np.matmul(np.swapaxes((a * sign)[:, :, None] * jg, 1, 2), jac)
+    second = -(cross + np.swapaxes(cross, 1, 2))
+    if curvature is not None:
+        second = second + curvature(-a, -a * e * sign)
+    return e, jac, good, second
+
+
+def _positive_definite(m: Array) -> Mask:
+    """Stacked symmetric matrices, True where positive definite (Sylvester: every leading
+    principal minor > 0, relative to the diagonal's product)."""
+    p = m.shape[1]
+    ok = np.ones(len(m), dtype=bool)
+    for k in range(1, p + 1):
+        minor = np.linalg.det(m[:, :k, :k]) if k > 1 else m[:, 0, 0]
+        scale = np.prod(np.abs(np.diagonal(m[:, :k, :k], axis1=1, axis2=2)), axis=1)
+        ok &= minor > 1e-12 * scale
+    return ok
 
 
 def _covariance(gram: Array, norms: Array) -> Array:

@@ -242,7 +242,8 @@ def test_single_precision_scan_picks_the_double_precision_best() -> None:
     for kind, units in kinds.items():
         r, v = np.array([u[0] for u in units]), np.array([u[1] for u in units])
         r_min, span, dv = r.min(axis=1), np.ptp(r, axis=1), v - v.mean(axis=1, keepdims=True)
-        whole = shared.batch_inverse_offset._scan_costs(r, dv, grid * span[:, None] - r_min[:, None])
+        trial = grid * span[:, None] - r_min[:, None]
+        whole = shared.batch_inverse_offset._scan_costs(r, dv, trial)
         best, around, finite = shared.batch_inverse_offset._scan(r, dv, r_min, span)
         assert np.array_equal(best, np.argmin(whole, axis=1)), kind
         mid = np.clip(best, 1, grid.size - 2)[:, None] + np.arange(-1, 2)

@@ -112,7 +112,7 @@ def test_reading_noise_equals_fit_one_by_one(
 def test_fold_back_units_are_masked_not_sent_to_fit(fitted_one_by_one: list[int]) -> None:
     units = reading_rangefinders(1007, 40)
     many = fit_many("inverse_offset", units)
-    for i, (got, (r, v)) in enumerate(zip(many, units, strict=True)):
+    for got, (r, v) in zip(many, units, strict=True):
         assert_fits_agree(got, fit("inverse_offset", r, v), INVERSE_OFFSET)
     assert fitted_one_by_one == []
     folded = [i for i, f in enumerate(many) if any("fold-back" in why for _, why in f.excluded)]
@@ -133,5 +133,5 @@ def test_excluded_points_are_masked(family: str, fitted_one_by_one: list[int]) -
 
 def test_an_exclusion_a_unit_does_not_have_raises_as_fit_does() -> None:
     units = line_units(np.random.default_rng(1009), 3)
-    with pytest.raises(BadInput, match="^unit 0: exclude: point 99 does not exist"):
+    with pytest.raises(BadInput, match=r"^unit 0: exclude: point 99 does not exist"):
         fit_many("line", units, exclude={99: "no such point"})
