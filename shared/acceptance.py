@@ -15,6 +15,11 @@ absent). The unit passes when
    (``shared.budget``), not to this check;
 3. the fitted curve is monotone over its valid range (``Fit.monotone``): where it is not, one
    reading stands for two values and the curve cannot go into an instrument.
+
+"Closest to its limit" (``worst_error`` and its point) is the used point with the largest
+|error| / allowed, the share of its tolerance it uses (``tolerance_used_pct``, in %): with a
+tolerance that grows with the value, a small error at a small value can use more of its
+tolerance than a larger error at a large value, and the other way round.
 """
 
 from __future__ import annotations
@@ -38,12 +43,13 @@ class Decision:
     passed: bool
     rule: str
     reasons: tuple[str, ...]
-    worst_error: float  # |residual| of the used point with the least margin (error - allowed)
+    worst_error: float  # |residual| of the used point closest to its limit (largest |e| / allowed)
     worst_error_at: float  # its reference value
     allowed_at_worst: float  # the error allowed there
     max_expanded_uncertainty: float  # largest U (k = 2) judged for the TUR among used points
     tur_required: float
     tur_achieved: float  # smallest allowed / U over used points
+    tolerance_used_pct: float = 0.0  # 100 worst_error / allowed_at_worst: share of tolerance used
 
     def to_dict(self) -> dict[str, object]:
         return {
@@ -56,6 +62,7 @@ class Decision:
             "max_expanded_uncertainty": self.max_expanded_uncertainty,
             "tur_required": self.tur_required,
             "tur_achieved": self.tur_achieved,
+            "tolerance_used_pct": self.tolerance_used_pct,
         }
 
 
@@ -134,7 +141,8 @@ def decide(
         else np.zeros_like(u_curve)
     )
     big_u = K_CONVENTION * np.sqrt(u_curve**2 + u_ref**2 + u_res**2)
-    worst = int(np.argmax(error - allowed))
+    used_share = tolerance_share(error, allowed)
+    worst = int(np.argmax(used_share))
     ratio = np.divide(allowed, big_u, out=np.full_like(allowed, np.inf), where=big_u > 0)
     reasons = []
     n_out = int(np.sum(error > allowed))
@@ -161,4 +169,14 @@ def decide(
         max_expanded_uncertainty=float(big_u.max()),
         tur_required=tur,
         tur_achieved=float(ratio.min()),
+        tolerance_used_pct=float(100.0 * used_share[worst]),
     )
+
+
+def tolerance_share(error: np.ndarray, allowed: np.ndarray) -> np.ndarray:
+    """|error| / allowed at each point: the share of its tolerance a point uses (1 = at the
+    limit). Where nothing is allowed (a relative tolerance at value 0) any error uses an
+    infinite share, none uses none."""
+    error = np.abs(error)
+    share = np.divide(error, allowed, out=np.zeros_like(error), where=allowed > 0)
+    return np.where((allowed <= 0) & (error > 0), np.inf, share)

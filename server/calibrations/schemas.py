@@ -13,6 +13,7 @@ from pydantic import (
     StringConstraints,
     ValidationInfo,
     field_validator,
+    model_validator,
 )
 
 from server.calibrations.models import SessionKind
@@ -122,6 +123,18 @@ class DecisionRead(BaseModel):
     max_expanded_uncertainty: float
     tur_required: float
     tur_achieved: float
+    tolerance_used_pct: float | None = Field(
+        default=None,
+        description="the point closest to its limit uses this share of its tolerance, in % "
+        "(100 |worst_error| / allowed_at_worst); the point is the one with the largest share. "
+        "Decisions stored before it was recorded: computed from their worst point.",
+    )
+
+    @model_validator(mode="after")
+    def _share_of_older_decisions(self) -> DecisionRead:
+        if self.tolerance_used_pct is None and self.allowed_at_worst > 0:
+            self.tolerance_used_pct = 100.0 * abs(self.worst_error) / self.allowed_at_worst
+        return self
 
 
 class CandidateRead(BaseModel):
