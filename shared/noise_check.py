@@ -16,12 +16,12 @@ points do not tell the two apart (always so for a straight line, whose slope is 
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
 
-from shared.errors import CalibrationError
 from shared.fitting import Fit
 
 Verdict = Literal["value", "reading", "either"]
@@ -96,24 +96,40 @@ def check_noise(result: Fit) -> NoiseCheck:
 
     Fits with given uncertainties (``sigma_source="given"``) are not checked ("either").
     """
+    return check_noise_many([result])[0]
+
+
+def check_noise_many(results: Sequence[Fit]) -> list[NoiseCheck]:
+    """``check_noise`` of each fit, the other model fitted to all of them at once (``fit_each``,
+    batched by family, options and the points a user excluded; fold-back is found again)."""
     from shared.batch import fit_each  # imported here: shared.batch uses shared.fitting
 
-    if result.sigma_source == "given":
-        return NoiseCheck(result.noise, "either", None, None)
-    other = "reading" if result.noise == "value" else "value"
-    exclude = dict(result.excluded)
-    (alt,) = fit_each(
-        result.family,
-        [(result.reading, result.value)],
-        noise=other,
-        exclude=exclude,
-        **_fit_options(result),
-    )
-    alt_fit = alt if isinstance(alt, Fit) else None
-    if isinstance(alt, CalibrationError):
-        alt_fit = None
-    pair = (result, alt_fit) if result.noise == "value" else (alt_fit, result)
-    return compare(pair[0], pair[1], result.noise)
+    out: list[NoiseCheck | None] = [None] * len(results)
+    groups: dict[tuple[Any, ...], list[int]] = {}
+    for i, result in enumerate(results):
+        if result.sigma_source == "given":
+            out[i] = NoiseCheck(result.noise, "either", None, None)
+            continue
+        user = tuple((j, why) for j, why in result.excluded if not str(why).startswith("fold-back"))
+        options = tuple(sorted(_fit_options(result).items(), key=lambda kv: kv[0]))
+        key = (result.family, repr(options), user, result.noise)
+        groups.setdefault(key, []).append(i)
+    for (family, _, user, noise), members in groups.items():
+        other = "reading" if noise == "value" else "value"
+        first = results[members[0]]
+        alts = fit_each(
+            family,
+            [(results[i].reading, results[i].value) for i in members],
+            noise=other,
+            exclude=dict(user),
+            **_fit_options(first),
+        )
+        for i, alt in zip(members, alts, strict=True):
+            alt_fit = alt if isinstance(alt, Fit) else None
+            mine = results[i]
+            pair = (mine, alt_fit) if mine.noise == "value" else (alt_fit, mine)
+            out[i] = compare(pair[0], pair[1], mine.noise)
+    return [c for c in out if c is not None]
 
 
 def _fit_options(result: Fit) -> dict[str, Any]:

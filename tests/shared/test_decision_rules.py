@@ -36,9 +36,7 @@ def test_guarded_w_equal_u_at_the_acceptance_limit_ilac_g8() -> None:
     risk = float(
         specific_false_accept(np.array([at_limit]), np.array([tolerance]), np.array([big_u / 2]))[0]
     )
-    assert risk == pytest.approx(
-        norm.sf(2.0) + norm.cdf(-18.0), rel=1e-12
-    )
+    assert risk == pytest.approx(norm.sf(2.0) + norm.cdf(-18.0), rel=1e-12)
     assert risk == pytest.approx(0.02275, abs=5e-6)
     assert risk <= 0.025
 
