@@ -47,6 +47,7 @@ zero slope under reading noise, non-finite values). A unit that makes ``fit`` ra
 
 from __future__ import annotations
 
+import gc
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import fields
 from itertools import repeat, starmap
@@ -336,8 +337,16 @@ def _collect(
         solved.monotone[ok].tolist(),
         strict=True,
     )
-    for i, made in zip(idx[ok].tolist(), starmap(_fit_maker(), args), strict=True):
-        out[i] = made
+    # thousands of Fits, dicts and row views and no reference cycles among them: the cyclic
+    # collector's passes meanwhile (triggered by the allocations) would only walk them
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        for i, made in zip(idx[ok].tolist(), starmap(_fit_maker(), args), strict=True):
+            out[i] = made
+    finally:
+        if enabled:
+            gc.enable()
 
 
 def _foldbacks(r: Array, v: Array) -> dict[int, Foldback]:

@@ -496,19 +496,32 @@ def reading_inverse_offset(fam: Family, opts: Mapping[str, Any], r: Array, v: Ar
 
 
 def _algebraic_start(r: Array, v: Array) -> Array:
-    """(k, r0, v0) from v r = -r0 v + v0 r + c, c = k + v0 r0, by least squares (centred)."""
+    """(k, r0, v0) from v r = -r0 v + v0 r + c, c = k + v0 r0, by least squares: first
+    unweighted, then once more weighted by 1 / (v - v0)^2 with that v0, which makes each
+    equation's error the reading's noise (its residual is (v - v0) times the reading's error):
+    close to the effective-variance minimum, so that few Newton steps remain."""
+    v0 = _algebraic(r, v, np.ones_like(r))[2]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        w = 1.0 / (v - v0[:, None]) ** 2
+    usable = np.isfinite(w).all(axis=1) & np.all(w > 0, axis=1)
+    w = np.where(usable[:, None], w, 1.0)
+    return np.stack(_algebraic(r, v, w), axis=1)
+
+
+def _algebraic(r: Array, v: Array, w: Array) -> tuple[Array, Array, Array]:
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        rc = r - r.mean(axis=1, keepdims=True)
-        vc = v - v.mean(axis=1, keepdims=True)
+        sw = w.sum(axis=1, keepdims=True)
         y = v * r
-        yc = y - y.mean(axis=1, keepdims=True)
-        design = np.stack([vc, rc], axis=-1)  # (u, n, 2)
-        gram = np.matmul(np.swapaxes(design, 1, 2), design)
-        rhs = np.matmul(np.swapaxes(design, 1, 2), yc[:, :, None])
-        det = gram[:, 0, 0] * gram[:, 1, 1] - gram[:, 0, 1] ** 2
-        a = (gram[:, 1, 1] * rhs[:, 0, 0] - gram[:, 0, 1] * rhs[:, 1, 0]) / det
-        b = (gram[:, 0, 0] * rhs[:, 1, 0] - gram[:, 0, 1] * rhs[:, 0, 0]) / det
-        c = y.mean(axis=1) - a * v.mean(axis=1) - b * r.mean(axis=1)
+        mr, mv, my = ((w * x).sum(axis=1, keepdims=True) / sw for x in (r, v, y))
+        rc, vc, yc = r - mr, v - mv, y - my
+        g00 = (w * vc * vc).sum(axis=1)
+        g01 = (w * vc * rc).sum(axis=1)
+        g11 = (w * rc * rc).sum(axis=1)
+        h0 = (w * vc * yc).sum(axis=1)
+        h1 = (w * rc * yc).sum(axis=1)
+        det = g00 * g11 - g01 * g01
+        a = (g11 * h0 - g01 * h1) / det
+        b = (g00 * h1 - g01 * h0) / det
+        c = my[:, 0] - a * mv[:, 0] - b * mr[:, 0]
         r0, v0 = -a, b
-        k = c - v0 * r0
-    return np.stack([k, r0, v0], axis=1)
+        return c - v0 * r0, r0, v0

@@ -77,16 +77,20 @@ def effective_variance(
             if not active.size:
                 break
             th = theta[active]
-            e, jac, good, second = _normalised(model, th, v[active], active)
-            c = np.einsum("un,un->u", e, e)
+            e, cols, good, second = _normalised(model, th, v[active], active)
+            c = _dot(e, e)
             cost[active] = np.where(np.isfinite(cost[active]), cost[active], c)
-            norms = np.sqrt(np.einsum("unp,unp->up", jac, jac))
+            # J^T J, J^T e and the column norms from the Jacobian's columns (p small: sums of
+            # products of (units, n) arrays, much faster than stacked matrix products)
+            raw = np.empty((len(active), p, p))
+            for a in range(p):
+                for b in range(a + 1):
+                    raw[:, a, b] = raw[:, b, a] = _dot(cols[a], cols[b])
+            norms = np.sqrt(np.diagonal(raw, axis1=1, axis2=2))
             good &= np.all(norms > 0, axis=1) & np.isfinite(norms).all(axis=1)
             norms = np.where(good[:, None], norms, 1.0)
-            js = jac / norms[:, None, :]
-            js_t = np.swapaxes(js, 1, 2)
-            gram = np.matmul(js_t, js)
-            grad = np.matmul(js_t, e[:, :, None])[:, :, 0]
+            gram = raw / (norms[:, :, None] * norms[:, None, :])
+            grad = np.stack([_dot(cols[a], e) for a in range(p)], axis=1) / norms
             safe = np.where(good[:, None, None], gram, eye)
             step = -np.linalg.solve(safe, grad[:, :, None])[:, :, 0]
             moved = np.sqrt(np.abs(np.einsum("up,up->u", step, -grad)))  # ||J_s step||
@@ -129,11 +133,17 @@ def effective_variance(
                 lm = safe[damped] + la[damped, None, None] * eye
                 step[damped] = -np.linalg.solve(lm, grad[damped][:, :, None])[:, :, 0]
             trial = th + step / norms
-            e_t, _, fine, _ = _normalised(model, trial, v[active], active, jacobian=False)
-            fine &= admissible(trial, active)
-            new_cost = np.where(fine, np.einsum("un,un->u", e_t, e_t), np.inf)
-            small = (moved <= EV_TRUST * root) & ~damped
-            better = fine & ((new_cost <= cost[active]) | small)
+            fine = admissible(trial, active) & np.isfinite(trial).all(axis=1)
+            # a small undamped step is taken without costing it (the rounded cost cannot judge
+            # it); its cost is taken afresh at the next iteration
+            small = (moved <= EV_TRUST * root) & ~damped & fine
+            new_cost = np.full(len(active), np.inf)
+            judge = np.flatnonzero(~small & fine)
+            if judge.size:
+                rows = active[judge]
+                e_t, _, ok_t, _ = _normalised(model, trial[judge], v[rows], rows, jacobian=False)
+                new_cost[judge] = np.where(ok_t, np.einsum("un,un->u", e_t, e_t), np.inf)
+            better = small | (fine & (new_cost <= cost[active]))
             theta[active[better]] = trial[better]
             cost[active[better]] = new_cost[better]
             lam[active] = np.where(
@@ -142,11 +152,16 @@ def effective_variance(
     return theta, cov, done
 
 
+def _dot(a: Array, b: Array) -> Array:
+    """Row-wise dot products of two (units, n) arrays."""
+    return np.asarray(np.einsum("un,un->u", a, b))
+
+
 def _normalised(
     model: EvModel, theta: Array, v: Array, rows: Index, *, jacobian: bool = True
-) -> tuple[Array, Array, Mask, Array]:
-    """e = (v - f) / |f'|, its Jacobian, ``good`` (f' non-zero and everything finite) and
-    sum_i e_i d2e_i/dtheta2 (the Hessian's second-order part, halved).
+) -> tuple[Array, list[Array], Mask, Array]:
+    """e = (v - f) / |f'|, the columns of its Jacobian, ``good`` (f' non-zero and everything
+    finite) and sum_i e_i d2e_i/dtheta2 (the Hessian's second-order part, halved).
 
     With u = v - f and w = |f'|: de = (du - e dw) / w and
     d2e = (d2u - e d2w - dw de^T - de dw^T) / w.
@@ -156,16 +171,22 @@ def _normalised(
     e = (v - f) / size
     good = np.all(size > 0, axis=1) & np.isfinite(e).all(axis=1)
     if not jacobian:
-        return e, jf, good, jf
+        return e, [], good, e
+    p = theta.shape[1]
     sign = np.sign(g)
-    jac = -(jf + (e * sign)[:, :, None] * jg) / size[:, :, None]
-    good &= np.isfinite(jac).all(axis=(1, 2))
-    a = e / size
-    cross = np.matmul(np.swapaxes((a * sign)[:, :, None] * jg, 1, 2), jac)
-    second = -(cross + np.swapaxes(cross, 1, 2))
+    inv_size = 1.0 / size
+    es = e * sign
+    cols = [-(jf[:, :, k] + es * jg[:, :, k]) * inv_size for k in range(p)]
+    good &= np.all([np.isfinite(col).all(axis=1) for col in cols], axis=0)
+    weighted = [(e * inv_size) * sign * jg[:, :, k] for k in range(p)]  # a sign(f') d w / dtheta
+    second = np.empty((len(theta), p, p))
+    for a in range(p):
+        for b in range(a + 1):
+            m = _dot(weighted[a], cols[b]) + _dot(weighted[b], cols[a])
+            second[:, a, b] = second[:, b, a] = -m
     if curvature is not None:
-        second = second + curvature(-a, -a * e * sign)
-    return e, jac, good, second
+        second = second + curvature(-e * inv_size, -e * inv_size * e * sign)
+    return e, cols, good, second
 
 
 def _positive_definite(m: Array) -> Mask:

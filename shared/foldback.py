@@ -87,6 +87,7 @@ def find_turnovers(means: Array, values: Array, counts: Array) -> Turnover:
         return Turnover(found, level, below_out, t_out, dof_out)
     positions = np.arange(levels)
     x_all = _abscissa(values)
+    steps = np.diff(means, axis=1)
     for idx in (np.argmax(means, axis=1), np.argmin(means, axis=1)):
         for below in (True, False):
             size = idx if below else levels - 1 - idx
@@ -98,7 +99,6 @@ def find_turnovers(means: Array, values: Array, counts: Array) -> Turnover:
                 else (positions[None, :] > idx[:, None])
             )
             path = beyond | (positions[None, :] == idx[:, None])
-            steps = np.diff(means, axis=1)
             in_path = path[:, 1:] & path[:, :-1]
             rising = np.all(~in_path | (steps > 0), axis=1)
             falling = np.all(~in_path | (steps < 0), axis=1)
