@@ -22,8 +22,9 @@ extreme| is significant when
 
 (n = readings per level). Under a monotone response D is at most noise, so a real turnover gives
 a t far beyond that quantile (two points past the peak of a rangefinder read with a few counts of
-ADC noise: t ~ 15 or more), while noise alone rarely reaches it (a false exclusion in 0.35 % of
-simulated units whose nearest reference values are closer than their scatter; see
+ADC noise: t ~ 20), while noise alone rarely reaches it (a false exclusion in 0.10 % of 2,000
+simulated units whose nearest reference values are closer than their scatter, where the former
+rule, a reversal over 5 % of the reading span, excluded in 14.7 %; see
 tests/shared/test_foldback_noise.py). Fewer than 3 main-side levels: no test, no fold-back.
 
 ``find_foldbacks`` does the same for many units at once (each unit one point per reference value);
