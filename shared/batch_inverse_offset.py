@@ -495,17 +495,21 @@ def reading_inverse_offset(fam: Family, opts: Mapping[str, Any], r: Array, v: Ar
     return Solved(ok, params, cov, residuals, np.ones(units, dtype=bool), weights)
 
 
+ALGEBRAIC_PASSES = 1  # reweighted passes of the algebraic start
+
+
 def _algebraic_start(r: Array, v: Array) -> Array:
     """(k, r0, v0) from v r = -r0 v + v0 r + c, c = k + v0 r0, by least squares: first
     unweighted, then once more weighted by 1 / (v - v0)^2 with that v0, which makes each
     equation's error the reading's noise (its residual is (v - v0) times the reading's error):
     close to the effective-variance minimum, so that few Newton steps remain."""
-    v0 = _algebraic(r, v, np.ones_like(r))[2]
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        w = 1.0 / (v - v0[:, None]) ** 2
-    usable = np.isfinite(w).all(axis=1) & np.all(w > 0, axis=1)
-    w = np.where(usable[:, None], w, 1.0)
-    return np.stack(_algebraic(r, v, w), axis=1)
+    found = _algebraic(r, v, np.ones_like(r))
+    for _ in range(ALGEBRAIC_PASSES):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            w = 1.0 / (v - found[2][:, None]) ** 2
+        usable = np.isfinite(w).all(axis=1) & np.all(w > 0, axis=1)
+        found = _algebraic(r, v, np.where(usable[:, None], w, 1.0))
+    return np.stack(found, axis=1)
 
 
 def _algebraic(r: Array, v: Array, w: Array) -> tuple[Array, Array, Array]:

@@ -13,7 +13,8 @@ J_f = df/dtheta, J_f' = df'/dtheta and their second derivatives given by the fam
 ``EvModel``. (Gauss-Newton alone converges only linearly here: the residuals are not small
 against the curvature of e, and took a dozen steps.) A unit has converged when
 a Gauss-Newton step would move its normalised residuals by less than EV_XTOL of their root sum
-of squares (the parameters are then within ~EV_XTOL of a standard uncertainty of the minimum),
+of squares (the parameters are then within ~EV_XTOL of a standard uncertainty of the minimum,
+and that last step, taken, brings them closer still),
 by less than EV_FLOOR of the readings' scale (an exact fit's rounding floor), or by less than
 EV_STALL and not half as much as the step before (the steps are rounding noise). Near the
 minimum an undamped step smaller than EV_TRUST is taken even when the rounded sum of squares
@@ -34,7 +35,7 @@ from shared.batch_common import Index, Mask
 from shared.families.base import Array
 
 EV_MAX_ITER = 60  # Levenberg-Marquardt steps at most
-EV_XTOL = 1e-10  # converged: a Gauss-Newton step moves the normalised residuals by less than
+EV_XTOL = 1e-7  # converged: a Gauss-Newton step moves the normalised residuals by less than
 # this fraction of their root sum of squares ...
 EV_FLOOR = 1e-13  # ... or by less than this fraction of the readings' scale
 EV_STALL = 1e-8  # ... or by less than this fraction and not half the previous step (rounding)
@@ -110,6 +111,12 @@ def effective_variance(
                 fin = active[floor]
                 done[fin] = True
                 cov[fin] = _covariance(safe[floor], norms[floor])
+                # the last (Newton) step is taken unjudged: below EV_XTOL, it halves the
+                # distance to the minimum's rounding floor or better at no cost (the covariance
+                # moves by far less than it can be known)
+                last_step = th[floor] + step[floor] / norms[floor]
+                take = admissible(last_step, fin) & np.isfinite(last_step).all(axis=1)
+                theta[fin[take]] = last_step[take]
             go = good & ~floor
             dropped = ~good
             if dropped.any():
