@@ -93,14 +93,14 @@ def effective_variance(
             gram = raw / (norms[:, :, None] * norms[:, None, :])
             grad = np.stack([_dot(cols[a], e) for a in range(p)], axis=1) / norms
             safe = np.where(good[:, None, None], gram, eye)
-            step = -np.linalg.solve(safe, grad[:, :, None])[:, :, 0]
+            step = -_solve(safe, grad)
             moved = np.sqrt(np.abs(np.einsum("up,up->u", step, -grad)))  # ||J_s step||
             # Newton where the full Hessian (J^T J + sum e d2e) is positive definite
             hess = safe + second / (norms[:, :, None] * norms[:, None, :])
             hess = np.where(np.isfinite(hess), hess, eye)
             newton = _positive_definite(hess)
             if newton.any():
-                step[newton] = -np.linalg.solve(hess[newton], grad[newton][:, :, None])[:, :, 0]
+                step[newton] = -_solve(hess[newton], grad[newton])
             root = np.sqrt(c)
             stalled = (moved <= EV_STALL * root) & (moved > 0.5 * last[active])
             last[active] = moved
@@ -196,10 +196,43 @@ def _normalised(
     return e, cols, good, second
 
 
+def _solve(m: Array, rhs: Array) -> Array:
+    """Stacked small systems m x = rhs; 3 x 3 by cofactors (much faster than LAPACK per matrix
+    for well-conditioned, column-scaled matrices like these), others by ``np.linalg.solve``."""
+    if m.shape[1] != 3:
+        return np.asarray(np.linalg.solve(m, rhs[:, :, None])[:, :, 0])
+    a, b, c = m[:, 0, 0], m[:, 0, 1], m[:, 0, 2]
+    d, e, f = m[:, 1, 1], m[:, 1, 2], m[:, 2, 2]
+    b2, c2, e2 = m[:, 1, 0], m[:, 2, 0], m[:, 2, 1]
+    # cofactors of a general 3 x 3 (the damped and Newton matrices are symmetric, but keep it
+    # general): inverse = adjugate / det
+    c00, c01, c02 = d * f - e * e2, -(b2 * f - e * c2), b2 * e2 - d * c2
+    c10, c11, c12 = -(b * f - c * e2), a * f - c * c2, -(a * e2 - b * c2)
+    c20, c21, c22 = b * e - c * d, -(a * e - c * b2), a * d - b * b2
+    det = a * c00 + b * c01 + c * c02
+    r0, r1, r2 = rhs[:, 0], rhs[:, 1], rhs[:, 2]
+    return np.stack(
+        [
+            (c00 * r0 + c10 * r1 + c20 * r2) / det,
+            (c01 * r0 + c11 * r1 + c21 * r2) / det,
+            (c02 * r0 + c12 * r1 + c22 * r2) / det,
+        ],
+        axis=1,
+    )
+
+
 def _positive_definite(m: Array) -> Mask:
     """Stacked symmetric matrices, True where positive definite (Sylvester: every leading
     principal minor > 0, relative to the diagonal's product)."""
     p = m.shape[1]
+    if p == 3:
+        a, b, c = m[:, 0, 0], m[:, 0, 1], m[:, 0, 2]
+        d, e, f = m[:, 1, 1], m[:, 1, 2], m[:, 2, 2]
+        minor2 = a * d - b * b
+        det = a * (d * f - e * e) - b * (b * f - c * e) + c * (b * e - c * d)
+        return np.asarray(
+            (a > 0) & (minor2 > 1e-12 * np.abs(a * d)) & (det > 1e-12 * np.abs(a * d * f))
+        )
     ok = np.ones(len(m), dtype=bool)
     for k in range(1, p + 1):
         minor = np.linalg.det(m[:, :k, :k]) if k > 1 else m[:, 0, 0]
