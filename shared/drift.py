@@ -55,7 +55,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import special
 
-from shared.acceptance import describe_tolerance
+from shared.acceptance import describe_tolerance, tolerance_share
 from shared.errors import BadInput, OutOfRange
 from shared.families.base import Array
 from shared.fitting import Fit, Interval
@@ -406,13 +406,14 @@ class AsFound:
     in_tolerance: bool
     n_judged: int
     n_out: int
-    worst_error: float  # signed error at the worst point
+    worst_error: float  # signed error at the point closest to its limit (largest |e| / allowed)
     worst_at_reading: float
     worst_at_value: float
     allowed_at_worst: float
     outside_index: Index
     outside_reading: Array
     rule: str
+    tolerance_used_pct: float = 0.0  # 100 |worst_error| / allowed_at_worst
 
     def to_dict(self) -> dict[str, object]:
         return {
@@ -430,6 +431,7 @@ class AsFound:
             "worst_at_reading": self.worst_at_reading,
             "worst_at_value": self.worst_at_value,
             "allowed_at_worst": self.allowed_at_worst,
+            "tolerance_used_pct": self.tolerance_used_pct,
             "outside_index": self.outside_index.tolist(),
             "outside_reading": self.outside_reading.tolist(),
             "rule": self.rule,
@@ -480,7 +482,8 @@ def as_found(
     error = predicted - v[idx]
     allowed = (tolerance_abs or 0.0) + (tolerance_rel or 0.0) / 100.0 * np.abs(v[idx])
     within = np.abs(error) <= allowed
-    w = int(np.argmax(np.abs(error) - allowed))
+    share = tolerance_share(error, allowed)
+    w = int(np.argmax(share))
     rule = (
         f"As found: the previous calibration converts each new reading inside its valid range; "
         f"the error (converted - reference) must be within "
@@ -505,6 +508,7 @@ def as_found(
         worst_at_reading=float(r[idx][w]),
         worst_at_value=float(v[idx][w]),
         allowed_at_worst=float(allowed[w]),
+        tolerance_used_pct=float(100.0 * share[w]),
         outside_index=outside,
         outside_reading=_frozen(r[outside]),
         rule=rule,

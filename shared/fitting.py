@@ -20,7 +20,7 @@ same noise models apply.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any, Literal
 
@@ -41,6 +41,9 @@ MONOTONE_GRID = 513
 EV_MAX_ITER = 30  # effective-variance reweighting: iterations at most
 EV_START_ITER = 4  # reweighted solves that start the direct effective-variance minimisation
 EV_RTOL = 1e-9  # ... until the parameters change by less than this (relative)
+EV_POLISH_STEPS = 8  # Gauss-Newton steps with the analytic Jacobian after least_squares
+EV_POLISH_XTOL = 1e-12  # ... until a step moves the normalised residuals by less (relative)
+EV_POLISH_TRUST = 1e-6  # a step this small is taken even if the rounded cost rises
 
 
 def _frozen(values: ArrayLike, dtype: type = np.float64) -> Array:
@@ -362,8 +365,60 @@ def _solve_weighted(
     )
     if not found.success or not np.all(np.isfinite(found.x)):
         raise SingularFit(f"the effective-variance fit did not converge: {found.message}")
-    cov = unscaled_covariance(np.asarray(found.jac, dtype=float), np.ones_like(r))
-    return Solution(params=found.x, cov_unscaled=cov), _weights_from(variance(found.x))
+    slope_jac = getattr(fam, "slope_jacobian", None)
+    if slope_jac is None:
+        cov = unscaled_covariance(np.asarray(found.jac, dtype=float), np.ones_like(r))
+        return Solution(params=found.x, cov_unscaled=cov), _weights_from(variance(found.x))
+
+    def jacobian(params: Array) -> Array:
+        """d normalised / d params, analytic: -(J_f + e f' u_r^2 J_f' / sigma) / sigma."""
+        sigma = np.sqrt(variance(params))
+        e = normalised(params)
+        jf = np.atleast_2d(fam.jacobian(params, r, opts))
+        jg = np.atleast_2d(slope_jac(params, r, opts))
+        f_prime = slope_of(fam, params, r, opts)
+        inner = (e * f_prime * u_r**2 / sigma)[:, None] * jg
+        return np.asarray(-(jf + inner) / sigma[:, None], dtype=float)
+
+    params = _ev_polish(normalised, jacobian, np.asarray(found.x, dtype=float))
+    cov = unscaled_covariance(jacobian(params), np.ones_like(r))
+    return Solution(params=params, cov_unscaled=cov), _weights_from(variance(params))
+
+
+def _ev_polish(
+    normalised: Callable[[Array], Array], jacobian: Callable[[Array], Array], params: Array
+) -> Array:
+    """Gauss-Newton steps on the effective-variance objective with the analytic Jacobian.
+
+    ``least_squares`` with a finite-difference Jacobian stops once it cannot see the sum of
+    squares fall, short of the minimum where the parameters are ill-conditioned (a raw cubic);
+    these steps (least squares on the column-scaled Jacobian, by SVD) go on to the rounding
+    floor: until a step moves the normalised residuals by less than EV_POLISH_XTOL of their
+    root sum of squares, or stops shrinking. A step that raises the sum of squares is refused
+    unless it is below EV_POLISH_TRUST of it (its gain is then below the rounding).
+    """
+    e = normalised(params)
+    cost = float(e @ e)
+    last = np.inf
+    for _ in range(EV_POLISH_STEPS):
+        jac = jacobian(params)
+        norms = np.linalg.norm(jac, axis=0)
+        if not np.all(np.isfinite(jac)) or np.any(norms == 0):
+            break
+        scaled = np.linalg.lstsq(jac / norms, -e, rcond=None)[0]
+        moved = float(np.linalg.norm((jac / norms) @ scaled))
+        root = np.sqrt(cost)
+        if moved <= EV_POLISH_XTOL * root or moved > 0.5 * last:
+            break
+        last = moved
+        trial = params + scaled / norms
+        with np.errstate(all="ignore"):
+            e_trial = normalised(trial)
+        trial_cost = float(e_trial @ e_trial)
+        if not np.isfinite(trial_cost) or (trial_cost > cost and moved > EV_POLISH_TRUST * root):
+            break
+        params, e, cost = trial, e_trial, min(cost, trial_cost)
+    return params
 
 
 def _weights_from(var: Array) -> Array:

@@ -119,11 +119,30 @@ def rank(
     found: list[Fit | CalibrationError] = []
     for name, options in candidates:
         opts = get_family(name).check_options(options)
-        try:
-            found.append(fit(name, reading, value, exclude=excluded, **fit_kwargs, **opts))
-        except CalibrationError as exc:
-            found.append(exc)
+        found.append(_fit_one(name, reading, value, excluded, fit_kwargs, opts))
     return _ranked(candidates, found, excluded)
+
+
+def _fit_one(
+    name: str,
+    reading: ArrayLike,
+    value: ArrayLike,
+    excluded: Mapping[int, str],
+    fit_kwargs: Mapping[str, Any],
+    opts: Mapping[str, Any],
+) -> Fit | CalibrationError:
+    """One family on one dataset, or its error. With the noise in the reading, through the
+    batched effective-variance fit (``shared.batch_reading``): several times faster than
+    fit()'s, even for one dataset, and agreeing with it to ~1e-12 (fit_many's promise)."""
+    if fit_kwargs.get("noise") == "reading":
+        from shared.batch import fit_each  # imported here: shared.batch uses shared.fitting
+
+        (one,) = fit_each(name, [(reading, value)], exclude=excluded, **fit_kwargs, **opts)
+        return one
+    try:
+        return fit(name, reading, value, exclude=excluded, **fit_kwargs, **opts)
+    except CalibrationError as exc:
+        return exc
 
 
 def rank_many(
@@ -155,10 +174,7 @@ def rank_many(
         )
         for i, (reading, value) in enumerate(datasets):
             if i not in each:
-                try:
-                    each[i] = fit(name, reading, value, exclude=excluded[i], **fit_kwargs, **opts)
-                except CalibrationError as exc:
-                    each[i] = exc
+                each[i] = _fit_one(name, reading, value, excluded[i], fit_kwargs, opts)
             found[i].append(each[i])
     return [_ranked(candidates, f, e) for f, e in zip(found, excluded, strict=True)]
 

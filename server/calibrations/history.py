@@ -304,6 +304,7 @@ def _store_batch(
                 "decision": decision.to_dict(),
                 "ranking": outcome.ranking,
                 "diagnostics": outcome.diagnostics,
+                "noise_check": outcome.noise_check,
                 "passed": decision.passed,
                 "is_current": True,
                 "engine_version": fitted.engine_version,

@@ -110,6 +110,9 @@ class FitRecord(Base):
     ranking: Mapped[dict[str, Any] | None] = mapped_column(JSON)
     # {"suspects": [{index, t, reason}], "lack_of_fit": {...} | None}; None before revision 0002
     diagnostics: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    # shared.noise_check.NoiseCheck.to_dict(): which noise model the points support; None for
+    # fits stored before revision 0009
+    noise_check: Mapped[dict[str, Any] | None] = mapped_column(JSON)
     passed: Mapped[bool] = mapped_column(Boolean)
     is_current: Mapped[bool] = mapped_column(Boolean, default=True)
     engine_version: Mapped[str] = mapped_column(String(32))

@@ -345,6 +345,7 @@ def unit_context(
     ctx.update(
         fit=fit,
         decision=decision,
+        noise_check=stored.noise_check,
         formula=shared.get_family(fit.family).formula,
         constants=[(name, value, stderr[name]) for name, value in fit.params.items()],
         value_range=tuple(float(v) for v in fit.to_value(list(fit.valid_range))),

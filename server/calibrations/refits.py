@@ -259,6 +259,7 @@ def _write_all(ctx: JobContext, results: list[_Refitted], problems: list[dict[st
                     decision=decision.to_dict(),
                     ranking=item.outcome.ranking,
                     diagnostics=item.outcome.diagnostics,
+                    noise_check=item.outcome.noise_check,
                     passed=decision.passed,
                     is_current=True,
                     engine_version=result.engine_version,

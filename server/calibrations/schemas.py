@@ -13,6 +13,7 @@ from pydantic import (
     StringConstraints,
     ValidationInfo,
     field_validator,
+    model_validator,
 )
 
 from server.calibrations.models import SessionKind
@@ -157,6 +158,44 @@ class DecisionRead(BaseModel):
     max_expanded_uncertainty: float
     tur_required: float
     tur_achieved: float
+    tolerance_used_pct: float | None = Field(
+        default=None,
+        description="the point closest to its limit uses this share of its tolerance, in % "
+        "(100 |worst_error| / allowed_at_worst); the point is the one with the largest share. "
+        "Decisions stored before it was recorded: computed from their worst point.",
+    )
+
+    decision_rule: str = Field(
+        "simple", description="'simple' or 'guarded' acceptance (ILAC-G8:2019)"
+    )
+    guard_multiple: float | None = Field(None, description="r of the guard band w = r U")
+    guard_band_at_worst: float | None = Field(
+        None, description="the guard band w at the point closest to its limit (guarded)"
+    )
+    acceptance_limit_at_worst: float | None = None
+    false_accept_risk: float | None = Field(
+        None,
+        description="for a unit that passed: the largest specific probability (normal model, "
+        "JCGM 106:2012) that a judged point is in fact outside its tolerance",
+    )
+    false_accept_at: float | None = Field(None, description="the reference value where it is")
+
+    @model_validator(mode="after")
+    def _share_of_older_decisions(self) -> DecisionRead:
+        if self.tolerance_used_pct is None and self.allowed_at_worst > 0:
+            self.tolerance_used_pct = 100.0 * abs(self.worst_error) / self.allowed_at_worst
+        return self
+
+
+class NoiseCheckRead(BaseModel):
+    """shared.noise_check: log-likelihood of noise in the value against noise in the reading."""
+
+    setting: str = Field(description="the type's noise_in the fit used")
+    supported: Literal["value", "reading", "either"]
+    loglik_value: float | None
+    loglik_reading: float | None
+    disagrees: bool = Field(description="the points clearly support the other setting")
+    test: str
 
 
 class CandidateRead(BaseModel):
@@ -319,6 +358,9 @@ class CalibrationRead(BaseModel):
     )
     suspects: list[SuspectRead]
     lack_of_fit: LackOfFitRead | None = Field(description="None when no reference value repeats")
+    noise_check: NoiseCheckRead | None = Field(
+        None, description="which noise model the points support; None for fits stored earlier"
+    )
     budget: BudgetRead = Field(
         description="at the middle of the valid range, or at the reading asked for"
     )

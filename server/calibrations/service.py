@@ -37,6 +37,7 @@ from server.calibrations.schemas import (
     FitHistoryRead,
     FitRead,
     LackOfFitRead,
+    NoiseCheckRead,
     PointIn,
     PointRead,
     RankingRead,
@@ -50,6 +51,7 @@ from server.standards.service import Named, resolve_for_session
 from shared.budget import TypeB, budget
 from shared.diagnostics import lack_of_fit, suspect_points
 from shared.fitting import Noise
+from shared.noise_check import NoiseCheck, check_noise, check_noise_many
 from shared.ranking import Candidate, Ranking, rank, rank_many
 
 ChosenBecause = Literal["requested", "recommended", "fallback"]
@@ -63,6 +65,7 @@ class Outcome:
     decision: shared.Decision
     ranking: dict[str, Any]  # Ranking.to_dict() plus "chosen" and "chosen_because"
     diagnostics: dict[str, Any]  # {"suspects": [...], "lack_of_fit": {...} | None}
+    noise_check: dict[str, Any] | None = None  # shared.noise_check.NoiseCheck.to_dict()
 
 
 def check_family(sensor_type: SensorType, family: str | None) -> None:
@@ -178,17 +181,31 @@ def fit_many_points(
     rankings = rank_many(
         candidates_of(sensor_type), datasets, noise=NoiseIn(sensor_type.noise_in).value
     )
-    found: list[Outcome | Invalid] = []
-    for ranking, type_b in zip(rankings, type_bs, strict=True):
+    chosen: list[shared.Fit | None] = []
+    for ranking in rankings:
         try:
-            found.append(judge(sensor_type, ranking, None, type_b))
+            kept = choose(sensor_type, ranking, None)[0].fit
+        except Invalid:
+            kept = None
+        chosen.append(kept)
+    fitted = [f for f in chosen if f is not None]
+    checks = iter(check_noise_many(fitted))  # the other noise model for all at once
+    found: list[Outcome | Invalid] = []
+    for ranking, type_b, kept in zip(rankings, type_bs, chosen, strict=True):
+        try:
+            check = next(checks) if kept is not None else None
+            found.append(judge(sensor_type, ranking, None, type_b, check))
         except Invalid as exc:
             found.append(exc)
     return found
 
 
 def judge(
-    sensor_type: SensorType, ranking: Ranking, family: str | None, type_b: TypeB | None
+    sensor_type: SensorType,
+    ranking: Ranking,
+    family: str | None,
+    type_b: TypeB | None,
+    noise_check: NoiseCheck | None = None,
 ) -> Outcome:
     """Keep one fit of the ranking (``choose``) and judge it against the type's tolerance."""
     chosen, because = choose(sensor_type, ranking, family)
@@ -202,12 +219,15 @@ def judge(
         unit=sensor_type.value_unit,
         reading_unit=sensor_type.reading_unit,
         type_b=type_b,
+        rule_kind="guarded" if sensor_type.decision_rule == "guarded" else "simple",
+        guard_multiple=sensor_type.guard_multiple,
     )
     return Outcome(
         fit=result,
         decision=decision,
         ranking={**ranking.to_dict(), "chosen": chosen.label, "chosen_because": because},
         diagnostics=diagnostics_of(result),
+        noise_check=(noise_check or check_noise(result)).to_dict(),
     )
 
 
@@ -345,6 +365,7 @@ def run_calibration(
             decision=decision.to_dict(),
             ranking=outcome.ranking,
             diagnostics=outcome.diagnostics,
+            noise_check=outcome.noise_check,
             passed=decision.passed,
             is_current=True,
             engine_version=result.engine_version,
@@ -545,6 +566,7 @@ def calibration_read(record: CalibrationSession, reading: float | None = None) -
         ranking=RankingRead(**stored.ranking) if stored.ranking is not None else None,
         suspects=suspects,
         lack_of_fit=LackOfFitRead(**lof) if lof is not None else None,
+        noise_check=NoiseCheckRead(**stored.noise_check) if stored.noise_check else None,
         budget=budget_of(record, result, reading),
         fit_history=[
             FitHistoryRead(

@@ -258,6 +258,9 @@ def _failed(unit: Unit, last: CalibrationSession, st: SensorType) -> Found | Non
     worst, allowed = d.get("worst_error"), d.get("allowed_at_worst")
     reasons = [str(r) for r in d.get("reasons") or []]
     detail = f": {'; '.join(reasons)}" if reasons else ""
+    used_pct = d.get("tolerance_used_pct")
+    if used_pct is None and isinstance(worst, int | float) and isinstance(allowed, int | float):
+        used_pct = 100.0 * abs(worst) / allowed if allowed > 0 else None  # stored before 0009
     if not reasons and isinstance(worst, int | float) and isinstance(allowed, int | float):
         detail += f" (worst error {_g(worst)} {vu}, allowed ±{_g(allowed)} {vu})"
     return Found(
@@ -273,6 +276,7 @@ def _failed(unit: Unit, last: CalibrationSession, st: SensorType) -> Found | Non
                 "worst_error": worst,
                 "worst_error_at": d.get("worst_error_at"),
                 "allowed_at_worst": allowed,
+                "tolerance_used_pct": used_pct,
                 "tur_achieved": d.get("tur_achieved"),
                 "tur_required": d.get("tur_required"),
                 "reasons": d.get("reasons", []),
@@ -384,7 +388,8 @@ def _out_in_service(
         f"as found {cur.performed_at:%Y-%m-%d}, the calibration of "
         f"{prev.performed_at:%Y-%m-%d} was out of tolerance at {found.n_out} of "
         f"{found.n_judged} points, worst {found.worst_error:+.3g} {vu} at "
-        f"{_g(found.worst_at_value, 4)} {vu} (allowed ±{_g(found.allowed_at_worst)} {vu}); "
+        f"{_g(found.worst_at_value, 4)} {vu} (allowed ±{_g(found.allowed_at_worst)} {vu}, "
+        f"{found.tolerance_used_pct:.0f} % of its tolerance); "
         f"{where} in between"
     )
     return Found(
@@ -402,6 +407,7 @@ def _out_in_service(
                 "worst_at_reading": found.worst_at_reading,
                 "worst_at_value": found.worst_at_value,
                 "allowed_at_worst": found.allowed_at_worst,
+                "tolerance_used_pct": found.tolerance_used_pct,
                 "installations": places,
                 "points": {
                     "value": found.value,

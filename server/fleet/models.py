@@ -52,6 +52,12 @@ class SensorType(Base):
         server_default=NoiseIn.value.value,
     )
     reading_resolution: Mapped[float | None] = mapped_column(Float)  # one step, reading units
+    # the decision rule (shared.acceptance, ILAC-G8:2019): "simple" (with the TUR) or "guarded"
+    # (acceptance limit = allowed - guard_multiple x U)
+    decision_rule: Mapped[str] = mapped_column(
+        String(16), default="simple", server_default="simple"
+    )
+    guard_multiple: Mapped[float] = mapped_column(Float, default=1.0, server_default="1.0")
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     # the fleet comparison (server.flags.fleet): the probe readings it last used, and when it
     # last finished; a queued or running fleet job means it is catching up

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from datetime import date, datetime
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
 
@@ -53,6 +53,15 @@ class SensorTypeCreate(BaseModel):
         allow_inf_nan=False,
         description="one reading step, reading units (e.g. 1 count); a type B input",
     )
+    decision_rule: Literal["simple", "guarded"] = Field(
+        "simple",
+        description="ILAC-G8:2019 decision rule: 'simple' acceptance (within the tolerance, with "
+        "the required TUR) or 'guarded' acceptance (within the tolerance less a guard band "
+        "w = guard_multiple x U)",
+    )
+    guard_multiple: float = Field(
+        1.0, ge=0, le=10, allow_inf_nan=False, description="r of the guard band w = r U (guarded)"
+    )
 
     @model_validator(mode="after")
     def _consistent(self) -> SensorTypeCreate:
@@ -68,7 +77,8 @@ class SensorTypeUpdate(BaseModel):
 
     Its name, quantity, units and reading span stay: records already made in them would change
     meaning (create another type instead). A change to how the type is fitted or judged
-    (families, family_options, noise_in, tolerances, tur, reading_resolution) refits every
+    (families, family_options, noise_in, tolerances, tur, reading_resolution, decision_rule,
+    guard_multiple) refits every
     calibration of the type as a background job; a change to the drift limit or the interval
     recomputes the type's flags and due dates at once.
     """
@@ -84,10 +94,13 @@ class SensorTypeUpdate(BaseModel):
     tur: float | None = Field(None, gt=0)
     noise_in: NoiseIn | None = None
     reading_resolution: float | None = Field(None, gt=0, allow_inf_nan=False)
+    decision_rule: Literal["simple", "guarded"] | None = None
+    guard_multiple: float | None = Field(None, ge=0, le=10, allow_inf_nan=False)
 
     @model_validator(mode="after")
     def _required_stay_set(self) -> SensorTypeUpdate:
-        for name in ("families", "family_options", "interval_days", "tur", "noise_in"):
+        required = ("families", "family_options", "interval_days", "tur", "noise_in")
+        for name in (*required, "decision_rule", "guard_multiple"):
             if name in self.model_fields_set and getattr(self, name) is None:
                 raise ValueError(f"{name} cannot be cleared")
         return self
@@ -112,6 +125,8 @@ class SensorTypeRead(BaseModel):
     tur: float
     noise_in: NoiseIn
     reading_resolution: float | None
+    decision_rule: str
+    guard_multiple: float
     created_at: datetime
 
 

@@ -93,6 +93,8 @@ REFIT_FIELDS = (  # a change to one of these changes fits or decisions: refit th
     "tolerance_rel",
     "tur",
     "reading_resolution",
+    "decision_rule",
+    "guard_multiple",
 )
 RECOMPUTE_FIELDS = ("drift_limit_abs", "interval_days")  # flags and due dates only
 

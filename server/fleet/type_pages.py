@@ -20,7 +20,7 @@ from server.accounts.deps import PageAdmin, PageViewer
 from server.accounts.models import ROLE_RANK, Role, User
 from server.calibrations import refits
 from server.calibrations.charts import Axes
-from server.calibrations.models import CalibrationSession, latest_session, stored_fit
+from server.calibrations.models import CalibrationSession, FitRecord, latest_session, stored_fit
 from server.db import ID_MAX, RowId, SessionDep
 from server.errors import Conflict, Invalid
 from server.flags import fleet as fleet_comparison
@@ -40,6 +40,7 @@ NUMBER_FIELDS = {  # form field -> words for errors
     "drift_limit_abs": "drift limit",
     "tur": "required TUR",
     "reading_resolution": "reading resolution",
+    "guard_multiple": "guard band multiple",
 }
 
 
@@ -60,6 +61,8 @@ class TypeForm:
     tur: str
     noise_in: str
     reading_resolution: str
+    decision_rule: str = "simple"
+    guard_multiple: str = "1"
     error: str | None = None
     error_field: str | None = None
     changed: list[str] = field(default_factory=list)
@@ -79,6 +82,8 @@ class TypeForm:
             tur=text(st.tur),
             noise_in=st.noise_in.value,
             reading_resolution=text(st.reading_resolution),
+            decision_rule=st.decision_rule,
+            guard_multiple=text(st.guard_multiple),
         )
 
 
@@ -125,6 +130,8 @@ def update_from_form(form: TypeForm) -> SensorTypeUpdate:
             if form.noise_in in {n.value for n in NoiseIn}
             else None,
             reading_resolution=_number(form.reading_resolution, "reading_resolution"),
+            decision_rule="guarded" if form.decision_rule == "guarded" else "simple",
+            guard_multiple=_number(form.guard_multiple, "guard_multiple") or 1.0,
         )
     except ValidationError as exc:
         first = exc.errors()[0]
@@ -163,7 +170,40 @@ def _context(
         "fleet_catching_up": fleet_comparison.catching_up(session, st),
         "can_edit": ROLE_RANK[user.role] >= ROLE_RANK[Role.admin],
         "type_url": type_url(st.name),
+        "noise_tally": noise_tally(session, st),
     }
+
+
+def noise_tally(session: Any, st: SensorType) -> dict[str, int]:
+    """Of the type's units with a checked current calibration, how many points support each
+    noise model (shared.noise_check) and how many disagree with the type's setting."""
+    rows = session.execute(
+        select(
+            CalibrationSession.unit_id,
+            CalibrationSession.performed_at,
+            CalibrationSession.id,
+            FitRecord.noise_check,
+        )
+        .join(FitRecord, FitRecord.session_id == CalibrationSession.id)
+        .join(Unit, Unit.id == CalibrationSession.unit_id)
+        .where(
+            Unit.sensor_type_id == st.id,
+            FitRecord.is_current.is_(True),
+            CalibrationSession.voided_at.is_(None),
+        )
+    ).all()
+    latest: dict[int, tuple[Any, int, dict[str, Any] | None]] = {}
+    for unit_id, when, sid, check in rows:
+        if unit_id not in latest or (when, sid) > latest[unit_id][:2]:
+            latest[unit_id] = (when, sid, check)
+    tally = {"checked": 0, "value": 0, "reading": 0, "either": 0, "disagree": 0}
+    for _, _, check in latest.values():
+        if not check:
+            continue
+        tally["checked"] += 1
+        tally[str(check.get("supported", "either"))] += 1
+        tally["disagree"] += bool(check.get("disagrees"))
+    return tally
 
 
 def fleet_view(session: Any, st: SensorType) -> dict[str, Any]:
@@ -393,6 +433,8 @@ def settings_form(
     tur: Annotated[str, Form()] = "",
     noise_in: Annotated[str, Form()] = "",
     reading_resolution: Annotated[str, Form()] = "",
+    decision_rule: Annotated[str, Form()] = "simple",
+    guard_multiple: Annotated[str, Form()] = "1",
 ) -> TypeForm:
     """The settings fields as typed (a type's settings form and the new-type form)."""
     return TypeForm(
@@ -405,6 +447,8 @@ def settings_form(
         tur=tur,
         noise_in=noise_in,
         reading_resolution=reading_resolution,
+        decision_rule=decision_rule,
+        guard_multiple=guard_multiple,
     )
 
 

@@ -227,6 +227,13 @@ class MonomialFamily:
         coef = np.polynomial.polynomial.polyder(self._raw(params, options))
         return polyval_accurate(np.asarray(coef, dtype=np.float64), np.asarray(reading, np.float64))
 
+    def slope_jacobian(self, params: Array, reading: Array, options: Options) -> Array:
+        """d slope / d params: k r^(k-1) for c_k."""
+        r = np.asarray(reading, dtype=np.float64)
+        return np.stack(
+            [k * r ** (k - 1) if k else np.zeros_like(r) for k in self.powers(options)], axis=-1
+        )
+
     def basis(self, reading: Array, options: Options) -> tuple[Array, Array]:
         """The design matrix in the well-conditioned basis, and M with raw params = M @ coef."""
         degree = self.degree(options)

@@ -51,6 +51,19 @@ class InverseOffset:
         inv = 1.0 / (reading + r0)
         return np.stack([inv, -k * inv**2, np.ones_like(reading)], axis=-1)
 
+    def slope(self, params: Array, reading: Array, options: Options) -> Array:
+        """d value / d reading = -k / (r + r0)^2."""
+        k, r0, _ = params
+        inv = 1.0 / (np.asarray(reading, dtype=float) + r0)
+        out: Array = -k * inv * inv
+        return out
+
+    def slope_jacobian(self, params: Array, reading: Array, options: Options) -> Array:
+        """d slope / d (k, r0, v0) = (-1/(r + r0)^2, 2k/(r + r0)^3, 0)."""
+        k, r0, _ = params
+        inv = 1.0 / (np.asarray(reading, dtype=float) + r0)
+        return np.stack([-(inv**2), 2.0 * k * inv**3, np.zeros_like(inv)], axis=-1)
+
     def solve(self, reading: Array, value: Array, weight: Array, options: Options) -> Solution:
         r_min = float(reading.min())
         span = float(np.ptp(reading)) or abs(r_min) or 1.0

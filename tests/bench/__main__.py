@@ -320,6 +320,9 @@ def main() -> int:
         f"{'curve_fit defaults (informative)':<40}: max relative difference "
         f"{informative.agreement:.1e} (stops short of the minimum; not checked)"
     )
+    from tests.bench.reading_bench import run as run_reading  # 10,000 units, noise in reading
+
+    ok &= run_reading()
     from tests.bench.pages_bench import run_pages  # serves the app on 10,000 units (~1.5 min)
 
     ok &= run_pages()

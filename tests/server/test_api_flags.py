@@ -115,6 +115,8 @@ def test_out_of_tolerance_in_service_names_the_installation(client, viewer, shop
     e = flag["evidence"]
     assert e["worst_error"] == pytest.approx(-SHIFT, abs=0.1)
     assert e["allowed_at_worst"] == pytest.approx(1.0)
+    assert e["tolerance_used_pct"] == pytest.approx(100 * abs(e["worst_error"]) / 1.0)
+    assert "% of its tolerance" in flag["message"]
     assert e["n_out"] == e["n_judged"] == READINGS.size
     [place] = e["installations"]
     assert place["location"] == "rig A / wrist"
@@ -126,7 +128,9 @@ def test_failed_acceptance_and_overdue(client, viewer, shop):
     items = flags(client, viewer)
     [failed] = of(items, "F-1", "failed_acceptance")
     assert failed["severity"] == "action"
-    assert failed["evidence"]["worst_error"] > failed["evidence"]["allowed_at_worst"]
+    e = failed["evidence"]
+    assert e["worst_error"] > e["allowed_at_worst"]
+    assert e["tolerance_used_pct"] == pytest.approx(100 * e["worst_error"] / e["allowed_at_worst"])
     [overdue] = of(items, "O-1", "overdue")
     assert overdue["evidence"]["days_overdue"] == 35
     assert overdue["severity"] == "action"  # more than 30 days late

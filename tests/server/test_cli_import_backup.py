@@ -148,7 +148,8 @@ def test_import_stores_the_files_points_and_reports_the_fit(capsys, fleet_url, t
     assert any(line.startswith("rse           ") and line.endswith(" mm") for line in lines)
     assert any(line in ("decision      PASSED", "decision      FAILED") for line in lines)
     assert any(
-        line.startswith("rule          Pass when every residual is within") for line in lines
+        line.startswith("rule          Simple acceptance (ILAC-G8:2019): pass when every")
+        for line in lines
     )
     assert any(line.startswith("open flags    ") for line in lines)
 

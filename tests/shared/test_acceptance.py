@@ -205,3 +205,21 @@ def test_a_curve_that_is_not_monotone_fails_with_the_reason() -> None:
 def test_negative_type_b_inputs_are_bad_input(line_fit: Fit, inputs: TypeB) -> None:
     with pytest.raises(BadInput):
         decide(line_fit, 0.5, None, type_b=inputs)
+
+
+def test_closest_to_its_limit_is_the_largest_share_of_tolerance() -> None:
+    """By hand: the line through (0, 0), (1000, 1000) is value = reading; residuals are put at
+    80 (0.013) and 800 (2.4), with the rest exact and a matching pair on the other side so that
+    the least-squares line stays value = reading. Tolerance 4 + 0.75 % of value: 4.6 allowed at
+    80 (0.28 % used), 10 at 800 (24 % used): the point at 800 is closest to its limit, though
+    its margin (allowed - |error|: 7.6) is larger than at 80 (4.587)."""
+    r = np.array([80.0, 80.0, 800.0, 800.0, 400.0])
+    v = np.array([80.013, 79.987, 802.4, 797.6, 400.0])
+    f = fit("line", r, v)
+    assert f.params["c1"] == pytest.approx(1.0, rel=1e-12)
+    d = decide(f, 4.0, 0.75, tur=1e-9)
+    assert d.worst_error == pytest.approx(2.4, rel=1e-9)
+    assert d.worst_error_at in (802.4, 797.6)
+    assert d.tolerance_used_pct == pytest.approx(100 * 2.4 / d.allowed_at_worst, rel=1e-12)
+    assert 23.9 < d.tolerance_used_pct < 24.1
+    assert d.to_dict()["tolerance_used_pct"] == d.tolerance_used_pct

@@ -350,13 +350,26 @@ def test_as_found_with_a_line_by_hand() -> None:
     np.testing.assert_allclose(found.allowed, [0.223, 0.279, 0.38], rtol=1e-12)
     assert found.within.tolist() == [False, True, True]
     assert not found.in_tolerance and found.n_out == 1 and found.n_judged == 3
-    # worst = largest |error| - allowed: 0.077, -0.179, -0.38 -> the first point
+    # worst = largest |error| / allowed: 1.345, 0.358, 0 -> the first point, 134.5 % used
     assert found.worst_error == pytest.approx(-0.3, abs=1e-9)
+    assert found.tolerance_used_pct == pytest.approx(100 * 0.3 / 0.223, rel=1e-9)
     assert (found.worst_at_reading, found.worst_at_value) == (1.0, 2.3)
     assert found.allowed_at_worst == pytest.approx(0.223)
     assert found.index.tolist() == [0, 1, 2]
     assert found.outside_index.tolist() == [3] and found.outside_reading.tolist() == [12.0]
     assert "±(0.2 + 1 % of value)" in found.rule
+
+
+def test_as_found_worst_is_the_largest_share_of_tolerance() -> None:
+    """By hand: allowed = 4 + 0.75 % of value. Errors -0.013 at 80 (allowed 4.6, 0.28 % used)
+    and -2.4 at 800 (allowed 10, 24 % used): the point at 800 is closest to its limit, though
+    the margin (allowed - |error|) is larger there (7.6 against 4.587)."""
+    previous = fit("line", [0.0, 500.0, 1000.0], [0.0, 500.0, 1000.0])  # value = reading
+    found = as_found(previous, [80.0, 400.0, 800.0], [80.013, 400.0, 802.4], 4.0, 0.75)
+    assert found.worst_at_value == 802.4
+    assert found.worst_error == pytest.approx(-2.4, abs=1e-9)
+    assert found.allowed_at_worst == pytest.approx(4.0 + 0.0075 * 802.4)
+    assert found.tolerance_used_pct == pytest.approx(100 * 2.4 / (4.0 + 0.0075 * 802.4))
 
 
 def test_as_found_rangefinder_offset_by_hand() -> None:

@@ -35,8 +35,22 @@ def datasets() -> list[tuple[list[float], list[float]]]:
     return out
 
 
-@pytest.mark.parametrize("noise", ["value", "reading"])
-def test_rank_many_is_rank_one_by_one(noise: str) -> None:
+def same(a: object, b: object, rel: float) -> bool:
+    """Equal, numbers within ``rel`` (relative; 0: exactly), through dicts and lists."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(same(a[k], b[k], rel) for k in a)
+    if isinstance(a, list | tuple) and isinstance(b, list | tuple):
+        return len(a) == len(b) and all(same(x, y, rel) for x, y in zip(a, b, strict=True))
+    if isinstance(a, float) and isinstance(b, float) and rel:
+        return a == pytest.approx(b, rel=rel, abs=1e-12)
+    return a == b
+
+
+# value noise: fit_many runs fit()'s own solvers, bit for bit; reading noise: the batched
+# effective-variance fit agrees with fit() to ~1e-12 (tests/shared/test_batch_masked_reading.py);
+# 1e-7 relative here covers the derived figures (AICc of near-exact fits, covariances)
+@pytest.mark.parametrize(("noise", "rel"), [("value", 0.0), ("reading", 1e-7)])
+def test_rank_many_is_rank_one_by_one(noise: str, rel: float) -> None:
     candidates = [
         ("line", {}),
         ("polynomial", {"degree": 2}),
@@ -48,12 +62,12 @@ def test_rank_many_is_rank_one_by_one(noise: str) -> None:
     assert len(many) == len(data)
     for got, (r, v) in zip(many, data, strict=True):
         want = rank(candidates, r, v, noise=noise)
-        assert got.to_dict() == want.to_dict()
+        assert same(got.to_dict(), want.to_dict(), rel)
         assert dict(got.excluded) == dict(want.excluded)
         if want.recommended is not None:
             assert got.recommended is not None
-            assert got.recommended.fit.to_dict() == want.recommended.fit.to_dict()
-    assert any(m.excluded for m in many)  # the fold-back case took the one-by-one path
+            assert same(got.recommended.fit.to_dict(), want.recommended.fit.to_dict(), rel)
+    assert any(m.excluded for m in many)  # the fold-back case
     assert all(c.fit is None for c in many[-1].candidates)
 
 

@@ -100,7 +100,11 @@ def test_preview_stores_nothing_and_agrees_with_an_independent_fit(app, client) 
     assert data_value(html, 'id="preview-dof"') == len(ANGLES) - 2
     # the tolerance is 1.5 deg and every residual is far inside it: the decision and its rule
     assert np.abs(residuals).max() < 1.5
-    assert "badge-pass" in html and "<strong>Rule.</strong> Pass when every residual" in html
+    assert (
+        "badge-pass" in html
+        and "<strong>Rule.</strong> Simple acceptance (ILAC-G8:2019): pass when every residual"
+        in html
+    )
     assert 'id="preview-curve"' in html and 'id="preview-residuals"' in html
     figure = re.search(r'id="preview-residuals"[^>]*data-figure="([^"]+)"', html)
     assert figure and "tolerance" in unescape(figure.group(1))

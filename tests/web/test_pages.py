@@ -200,6 +200,10 @@ def test_unit_page_shows_constants_plots_and_history(client: TestClient) -> None
     )
     assert html.count('<tr class="') >= 2  # two sessions in the history
     assert "fold-back" in html  # the excluded points' reason is shown
+    # closest to its limit as the share of the tolerance used, in %
+    assert re.search(
+        r'Closest to its limit</dt><dd><span class="mono">[\d.e+]+ % of tolerance used', html
+    )
 
 
 def test_unit_without_calibration(client: TestClient) -> None:
