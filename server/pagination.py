@@ -9,6 +9,8 @@ from pydantic import BaseModel
 from sqlalchemy import Select, func, select
 from sqlalchemy.orm import Session
 
+from server.db import ID_MAX
+
 
 class PageParams(BaseModel):
     page: int = 1
@@ -20,7 +22,8 @@ class PageParams(BaseModel):
 
 
 def page_params(
-    page: Annotated[int, Query(ge=1, description="1-based page number")] = 1,
+    # bounded so that the row offset fits any database's integer (a larger page is a 422)
+    page: Annotated[int, Query(ge=1, le=ID_MAX, description="1-based page number")] = 1,
     per_page: Annotated[int, Query(ge=1, le=500, description="items per page")] = 50,
 ) -> PageParams:
     return PageParams(page=page, per_page=per_page)

@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import IO
 
+from server.calibrations.schemas import POINT_MAGNITUDE
 from server.errors import Invalid
 
 REQUIRED = (
@@ -104,6 +105,8 @@ def _number(text: str, column: str) -> float:
         raise ValueError(f"{column} {text!r} is not a number") from None
     if not math.isfinite(x):
         raise ValueError(f"{column} {text!r} is not a finite number")
+    if abs(x) > POINT_MAGNITUDE:
+        raise ValueError(f"{column} {text!r} is larger than {POINT_MAGNITUDE:g} in magnitude")
     return x
 
 

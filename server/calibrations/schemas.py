@@ -23,11 +23,26 @@ Text64 = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, m
 Text128 = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=128)]
 
 
+# the largest magnitude a point may have: far beyond any sensor's range in any unit, and small
+# enough that the fits' squares and products of it stay finite in double precision
+POINT_MAGNITUDE = 1e15
+
+
 class PointIn(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
-    reference_value: float = Field(allow_inf_nan=False, description="reference, value units")
-    reading: float = Field(allow_inf_nan=False, description="what the unit read")
+    reference_value: float = Field(
+        allow_inf_nan=False,
+        ge=-POINT_MAGNITUDE,
+        le=POINT_MAGNITUDE,
+        description="reference, value units",
+    )
+    reading: float = Field(
+        allow_inf_nan=False,
+        ge=-POINT_MAGNITUDE,
+        le=POINT_MAGNITUDE,
+        description="what the unit read",
+    )
     excluded: bool = False
     exclude_reason: str | None = Field(None, max_length=500)
     sd: float | None = Field(

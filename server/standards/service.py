@@ -13,7 +13,8 @@ from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from typing import Any, Literal
 
-from sqlalchemy import Select, and_, func, select
+from sqlalchemy import Select, and_, func, or_, select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, aliased, selectinload
 
 from server.audit import service as audit
@@ -102,8 +103,13 @@ def find_standard(session: Session, name: str, *, lock: Lock = None) -> Referenc
     SQLite's writers are one at a time anyway): ``share`` for a session naming it, ``update``
     for a check, so a check and a save against the standard never interleave (a save committed
     while a failed check looked for the units at risk would be missed by it)."""
+    wanted = name.strip()
+    # the exact name too: SQLite's lower() folds ASCII letters only, so "À" would not find "À"
     query = select(ReferenceStandard).where(
-        func.lower(ReferenceStandard.name) == name.strip().lower()
+        or_(
+            ReferenceStandard.name == wanted,
+            func.lower(ReferenceStandard.name) == wanted.lower(),
+        )
     )
     if lock is not None:
         query = query.with_for_update(read=lock == "share")
@@ -135,8 +141,12 @@ def create_standard(
         description=(data.description or "").strip() or None,
         created_by=actor,
     )
-    session.add(standard)
-    session.flush()
+    try:
+        with session.begin_nested():  # a register racing this one took the name first
+            session.add(standard)
+            session.flush()
+    except IntegrityError:
+        raise Conflict(f"reference standard {data.name!r} exists already", field="name") from None
     audit.record(
         session,
         actor,

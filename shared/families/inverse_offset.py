@@ -100,6 +100,11 @@ class InverseOffset:
         )
         _, k_best, v0_best = projected(found.x)
         start = np.array([k_best[0], np.exp(found.x) * span - r_min, v0_best[0]])
+        if not np.all(np.isfinite(start)):  # numbers so large that the start overflows
+            raise SingularFit(
+                "inverse_offset: no finite starting curve for these points (values or readings "
+                "too large to fit in double precision)"
+            )
 
         def resid(p: Array) -> Array:
             return (self.evaluate(p, reading, options) - value) * sw

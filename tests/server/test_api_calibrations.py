@@ -144,6 +144,8 @@ def test_newest_session_is_current_and_repeats_are_numbered(client, technician, 
         (lambda b: b.update(operator=""), "operator"),
         (lambda b: b["points"][0].update(excluded=True), "points.0.exclude_reason"),
         (lambda b: [p.update(reading=5.0) for p in b["points"]], "points"),  # constant readings
+        (lambda b: b["points"][1].update(reference_value=1e300), "points.1.reference_value"),
+        (lambda b: b["points"][2].update(reading=-2e15), "points.2.reading"),
     ],
 )
 def test_bad_calibration_names_the_field_and_writes_nothing(

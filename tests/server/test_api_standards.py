@@ -172,6 +172,16 @@ def test_bad_registrations_are_refused_by_field(client, technician, viewer):
     assert names == ["RAIL-1"]
 
 
+def test_a_name_outside_ascii_registered_twice_is_a_conflict(client, technician, viewer):
+    """SQLite's lower() folds ASCII only: the second "Jig À" once reached the unique
+    constraint and answered 500 (found by the API fuzz run)."""
+    ok(client.post("/api/v1/reference-standards", json=standard("Jig À"), headers=technician), 201)
+    again = client.post("/api/v1/reference-standards", json=standard("Jig À"), headers=technician)
+    assert again.status_code == 409 and again.json()["field"] == "name"
+    found = client.get("/api/v1/reference-standards/Jig%20%C3%80", headers=viewer)
+    assert found.status_code == 200 and found.json()["name"] == "Jig À"
+
+
 def test_a_session_naming_a_standard_takes_its_u_and_k(client, admin, technician, viewer):
     shop(client, admin, technician, "S-1")
     ok(
