@@ -19,8 +19,8 @@ from shared.families._monomial import (
     _accurate_sum,
     _binomials,
     _chebyshev_monomials,
-    _dd_times,
     _fast_two_sum,
+    _power_terms,
     _split,
     _two_prod,
     _two_sum,
@@ -127,22 +127,8 @@ def _raw_gradient(
     powers: list[int],
 ) -> tuple[Array, Array]:
     """``_raw_gradient`` with unit weights, for (units, n) arrays: (units, len(powers))."""
-    pow_hi, pow_lo = [np.ones_like(reading)], [np.zeros_like(reading)]
-    for _ in range(max(powers)):
-        prod, err = _two_prod(pow_hi[-1], reading, reading_split)
-        hi, lo = _fast_two_sum(prod, err + pow_lo[-1] * reading)
-        pow_hi.append(hi)
-        pow_lo.append(lo)
-    ones = np.ones_like(reading)
-    wr_p, wr_e = _two_prod(resid_hi, ones, _split(ones))
-    wr_hi, wr_lo = _fast_two_sum(wr_p, wr_e + resid_lo * ones)
-    t_hi, t_lo = _dd_times(
-        np.stack([pow_hi[k] for k in powers], axis=-1),
-        np.stack([pow_lo[k] for k in powers], axis=-1),
-        wr_hi[:, :, None],
-        wr_lo[:, :, None],
-    )
-    return _column_sums(t_hi, t_lo)
+    wr_hi, wr_lo = _fast_two_sum(resid_hi, resid_lo)  # unit weights: w r is r, exactly
+    return _column_sums(*_power_terms(reading, reading_split, wr_hi, wr_lo, powers))
 
 
 def _refine(

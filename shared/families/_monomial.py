@@ -118,6 +118,30 @@ def polyval_accurate(coef: Array, reading: Array) -> Array:
     return np.asarray(out, dtype=np.float64)
 
 
+def _power_terms(
+    reading: Array,
+    reading_split: tuple[Array, Array],
+    wr_hi: Array,
+    wr_lo: Array,
+    powers: list[int],
+) -> tuple[Array, Array]:
+    """r_i^k w_i (v_i - p(r_i)) for each k in ``powers`` (last axis), as double-doubles: the
+    terms of ``_raw_gradient``'s sums. Any leading axes (one unit, or units x points)."""
+    # columns r^k in double-double, built up by exact products with r
+    pow_hi, pow_lo = [np.ones_like(reading)], [np.zeros_like(reading)]
+    for _ in range(max(powers)):
+        p, e = _two_prod(pow_hi[-1], reading, reading_split)
+        hi, lo = _fast_two_sum(p, e + pow_lo[-1] * reading)
+        pow_hi.append(hi)
+        pow_lo.append(lo)
+    return _dd_times(
+        np.stack([pow_hi[k] for k in powers], axis=-1),
+        np.stack([pow_lo[k] for k in powers], axis=-1),
+        wr_hi[..., None],
+        wr_lo[..., None],
+    )
+
+
 def _raw_gradient(
     reading: Array,
     reading_split: tuple[Array, Array],
@@ -127,22 +151,9 @@ def _raw_gradient(
     powers: list[int],
 ) -> tuple[Array, Array]:
     """sum_i w_i r_i^k (v_i - p(r_i)) for each k in ``powers``, as double-doubles."""
-    # columns r^k in double-double, built up by exact products with r
-    pow_hi, pow_lo = [np.ones_like(reading)], [np.zeros_like(reading)]
-    for _ in range(max(powers)):
-        p, e = _two_prod(pow_hi[-1], reading, reading_split)
-        hi, lo = _fast_two_sum(p, e + pow_lo[-1] * reading)
-        pow_hi.append(hi)
-        pow_lo.append(lo)
     wr_p, wr_e = _two_prod(resid_hi, weight, _split(weight))
     wr_hi, wr_lo = _fast_two_sum(wr_p, wr_e + resid_lo * weight)
-    t_hi, t_lo = _dd_times(
-        np.stack([pow_hi[k] for k in powers], axis=-1),
-        np.stack([pow_lo[k] for k in powers], axis=-1),
-        wr_hi[:, None],
-        wr_lo[:, None],
-    )
-    return _accurate_sum(t_hi, t_lo)
+    return _accurate_sum(*_power_terms(reading, reading_split, wr_hi, wr_lo, powers))
 
 
 # -- the well-conditioned basis --------------------------------------------------------------------
