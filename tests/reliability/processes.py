@@ -18,15 +18,10 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlencode
 
+from tests.liveserver import free_port
 from tests.reliability.harness import HTTP_TIMEOUT_S, IDLE_S, ROOT, STARTUP_S
 
 # -- servers -----------------------------------------------------------------------------------
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
 
 
 class Server:

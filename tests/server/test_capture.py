@@ -39,8 +39,8 @@ from server.app import create_app
 from server.calibrations.models import CalibrationSession, Point
 from server.config import Settings
 from server.db import make_engine, make_sessionmaker
+from tests.liveserver import answers, free_port, start_uvicorn
 from tests.server.lines import pot_type
-from tests.web.conftest import _answers, _free_port
 
 ROOT = Path(__file__).resolve().parents[2]
 SERIAL = "POT-C01"
@@ -223,35 +223,16 @@ class Live:
                 headers=headers,
             )
             assert r.status_code == 201
-        self.port = _free_port()
+        self.port = free_port()
         self.base = f"http://127.0.0.1:{self.port}"
         self.log = tmp_path / "server.log"
         self.proc: subprocess.Popen[bytes] | None = None
         self.start()
 
     def start(self) -> None:
-        with self.log.open("a") as log:
-            self.proc = subprocess.Popen(
-                [
-                    sys.executable,
-                    "-m",
-                    "uvicorn",
-                    "--factory",
-                    "server.app:create_app",
-                    "--host",
-                    "127.0.0.1",
-                    "--port",
-                    str(self.port),
-                    "--log-level",
-                    "warning",
-                ],
-                cwd=ROOT,
-                env={**os.environ, "SENSORLEDGER_DATABASE_URL": self.url},
-                stdout=log,
-                stderr=subprocess.STDOUT,
-            )
+        self.proc = start_uvicorn(self.url, self.port, self.log)
         deadline = time.monotonic() + WAIT_S
-        while not _answers(f"{self.base}/signin"):
+        while not answers(f"{self.base}/signin"):
             assert self.proc.poll() is None and time.monotonic() < deadline, self.log.read_text()
             time.sleep(0.1)
 

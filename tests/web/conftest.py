@@ -7,14 +7,9 @@ blocked and fails the test: nothing may leave the machine.
 
 from __future__ import annotations
 
-import os
 import shutil
-import socket
 import subprocess
-import sys
 import time
-import urllib.error
-import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -27,6 +22,7 @@ from server.accounts import csrf
 from server.app import create_app
 from server.config import Settings
 from tests.conftest import missing
+from tests.liveserver import answers, free_port, start_uvicorn
 from tests.web.seed import TECHNICIAN, VIEWER, Fleet, seed
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -52,51 +48,17 @@ def live_db(tmp_path_factory: pytest.TempPathFactory) -> tuple[str, Fleet]:
     return url, seed(url)
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-def _answers(url: str) -> bool:
-    try:
-        with urllib.request.urlopen(url, timeout=1) as response:
-            return bool(response.status == 200)
-    except (urllib.error.URLError, ConnectionError, TimeoutError):
-        return False
-
-
 @pytest.fixture(scope="session")
 def server(live_db: tuple[str, Fleet], tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     """``uvicorn server.app:create_app`` in a subprocess on a free port; its base URL."""
     url, _ = live_db
-    port = _free_port()
+    port = free_port()
     log_path = tmp_path_factory.mktemp("uvicorn") / "server.log"
-    env = {**os.environ, "SENSORLEDGER_DATABASE_URL": url}
-    with open(log_path, "w") as log:
-        proc = subprocess.Popen(
-            [
-                sys.executable,
-                "-m",
-                "uvicorn",
-                "--factory",
-                "server.app:create_app",
-                "--host",
-                "127.0.0.1",
-                "--port",
-                str(port),
-                "--log-level",
-                "warning",
-            ],
-            cwd=ROOT,
-            env=env,
-            stdout=log,
-            stderr=subprocess.STDOUT,
-        )
+    proc = start_uvicorn(url, port, log_path)
     base = f"http://127.0.0.1:{port}"
     try:
         deadline = time.monotonic() + STARTUP_SECONDS
-        while not _answers(f"{base}/signin"):
+        while not answers(f"{base}/signin"):
             if proc.poll() is not None or time.monotonic() > deadline:
                 pytest.fail(f"uvicorn did not start (exit {proc.poll()}):\n{log_path.read_text()}")
             time.sleep(0.1)
