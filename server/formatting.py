@@ -83,7 +83,22 @@ def label(token: str) -> str:
     return str(token).replace("_", " ")
 
 
+RISK_FLOOR_PCT = 0.0001  # smaller risks are shown as below it: digits there mean nothing
+
+
+def risk_pct(probability: float | None) -> str:
+    """A probability as a percentage for people: two significant digits, ``< 0.0001 %`` below
+    that (a normal tail of 1e-75 is "none to speak of", not a number to read)."""
+    if probability is None or not math.isfinite(probability):
+        return DASH
+    pct = 100.0 * probability
+    if pct < RISK_FLOOR_PCT:
+        return f"< {RISK_FLOOR_PCT:g} %"
+    return f"{pct:.2g} %"
+
+
 FILTERS = {
+    "risk_pct": risk_pct,
     "sig": significant,
     "unc": uncertainty,
     "num": measured,
