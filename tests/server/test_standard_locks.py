@@ -72,7 +72,9 @@ def test_a_failed_check_and_a_save_against_the_standard_take_turns() -> None:
                 _, flagged = suspect.check_standard(
                     checker,
                     standard,
-                    CheckCreate(checked_on=date.today(), in_tolerance=False),
+                    # the day before NOW: the save below (NOW - 15 min) is after it even just
+                    # past midnight, when NOW - 15 min is still the day before
+                    CheckCreate(checked_on=(NOW - timedelta(days=1)).date(), in_tolerance=False),
                     "ann",
                 )
                 checker.commit()
