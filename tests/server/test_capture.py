@@ -126,7 +126,12 @@ class Run:
             found = re.search(pattern, line)
             if found:
                 return found
-        raise AssertionError(f"no line like {pattern!r}; output so far:\n" + "\n".join(self.seen))
+        said = ""
+        if self.proc.poll() is not None and self.proc.stderr is not None:
+            said = f"\nexited {self.proc.returncode}; stderr:\n{self.proc.stderr.read()[-3000:]}"
+        raise AssertionError(
+            f"no line like {pattern!r}; output so far:\n" + "\n".join(self.seen) + said
+        )
 
     def send(self, text: str) -> None:
         assert self.proc.stdin is not None
